@@ -2,9 +2,24 @@
 
 from __future__ import annotations
 
-import typer
+import json
+from pathlib import Path
+from typing import Annotated
 
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from site_agent.approvals import approve, list_approvals
+from site_agent.evaluation import evaluate_site
+from site_agent.exceptions import SitepoolError
+from site_agent.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
+from site_agent.metrics import MetricsSummary, summarize
 from site_agent.notices import RESEARCH_NOTICE
+from site_agent.policy import DEFAULT_APPROVALS_FILE, policy_json_schema
+from site_agent.predictions import load_predictions
+from site_agent.protocol import EvaluationPlan, StudyProtocol
+from site_agent.release import UNREGISTERED_PROTOCOL, AucRecord, EstimateRecord, SiteRelease
 
 site_app = typer.Typer(
     name="site",
@@ -12,3 +27,246 @@ site_app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
 )
+
+
+@site_app.command(
+    "evaluate",
+    help=f"Evaluate a predictions table and show what would leave the site. {RESEARCH_NOTICE}",
+)
+def evaluate_command(
+    predictions: Annotated[
+        Path, typer.Argument(help="Predictions table, CSV or Parquet (one row per case).")
+    ],
+    as_json: Annotated[
+        bool, typer.Option("--json", help="Print the release JSON exactly as it would be sent.")
+    ] = False,
+    protocol: Annotated[
+        Path | None,
+        typer.Option("--protocol", help="Study protocol JSON; default: the built-in plan."),
+    ] = None,
+    site: Annotated[
+        str | None, typer.Option("--site", help="Site name; default: the file name's stem.")
+    ] = None,
+) -> None:
+    """Evaluate a predictions table and show what would leave the site."""
+    try:
+        if protocol is None:
+            plan, protocol_hash = EvaluationPlan(), UNREGISTERED_PROTOCOL
+        else:
+            study = StudyProtocol.load(protocol)
+            plan, protocol_hash = study.evaluation, study.content_hash()
+        table = load_predictions(predictions)
+        release = evaluate_site(
+            table, plan, site=site or predictions.stem, protocol_hash=protocol_hash
+        )
+        summary = summarize(release.statistics)
+    except SitepoolError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    if as_json:
+        typer.echo(release.to_json())
+        return
+    _render(release, summary, Console(width=120))
+
+
+def _ci(e: EstimateRecord) -> str:
+    if e.estimate is None:
+        return f"— ({e.reason})"
+    if e.lower is None or e.upper is None:
+        return f"{e.estimate:.3f} (no interval: {e.reason})"
+    return f"{e.estimate:.3f} [{e.lower:.3f}, {e.upper:.3f}]"
+
+
+def _auc_text(a: AucRecord, *, logit: bool = False) -> str:
+    if a.auc is None:
+        return f"— ({a.reason})"
+    lower, upper = (a.logit_lower, a.logit_upper) if logit else (a.lower, a.upper)
+    if lower is None or upper is None:
+        return f"{a.auc:.3f} (no interval: {a.reason})"
+    return f"{a.auc:.3f} [{lower:.3f}, {upper:.3f}]"
+
+
+def _number(value: float | None) -> str:
+    return "—" if value is None else f"{value:.3f}"
+
+
+def _p_value(p: float | None) -> str:
+    if p is None:
+        return "—"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> None:
+    """Print the release as readable tables (the same numbers as ``--json``)."""
+    level = int(summary.confidence * 100)
+    console.print(f"[bold]Site evaluation: {release.site}[/bold]")
+    console.print(f"protocol: {release.protocol_hash}")
+    console.print(
+        f"cases {summary.n_observations} · patients {summary.n_patients} · "
+        f"disease {summary.n_positive} · no disease {summary.n_negative} · "
+        f"reference pending {summary.n_pending} · prevalence {_ci(summary.prevalence)}"
+    )
+
+    table = Table(title=f"Operating points ({level}% intervals: Wilson; clustered by patient)")
+    for column in ("threshold", "metric", "Wilson", "clustered", "Clopper–Pearson"):
+        table.add_column(column)
+    for t in summary.thresholds:
+        for name in ("sensitivity", "specificity", "ppv", "npv"):
+            p = getattr(t, name)
+            table.add_row(
+                f"{t.threshold:g}", name, _ci(p.wilson), _ci(p.clustered), _ci(p.clopper_pearson)
+            )
+        table.add_row(f"{t.threshold:g}", "accuracy", _ci(t.accuracy), "", "")
+        table.add_row(f"{t.threshold:g}", "F1", _number(t.f1.value), "", "", end_section=True)
+    console.print(table)
+
+    exact = release.exact
+    auc = Table(title=f"Discrimination ({level}% intervals)")
+    auc.add_column("estimate")
+    auc.add_column("value")
+    auc.add_row("AUC, DeLong", _auc_text(exact.auc))
+    auc.add_row("AUC, DeLong, logit interval", _auc_text(exact.auc, logit=True))
+    auc.add_row("AUC, clustered by patient (Obuchowski)", _auc_text(exact.clustered_auc))
+    hist = summary.auc
+    auc.add_row(
+        "AUC from released histogram",
+        "—" if hist.auc is None else f"{hist.auc:.3f} (binning error ≤ {hist.bound:.4f})",
+    )
+    for r in exact.readers:
+        difference = (
+            f"— ({r.reason})"
+            if r.difference is None
+            else f"{r.difference:+.3f} [{_number(r.lower)}, {_number(r.upper)}], "
+            f"p = {_p_value(r.p_value)}"
+        )
+        auc.add_row(f"model − {r.reader} (paired DeLong)", difference)
+    console.print(auc)
+
+    cal = Table(title="Calibration")
+    cal.add_column("estimate")
+    cal.add_column("value")
+    cal.add_row("intercept", _ci(exact.calibration.intercept))
+    cal.add_row("slope", _ci(exact.calibration.slope))
+    cal.add_row("Brier score", _number(summary.brier.value))
+    cal.add_row("expected calibration error", _number(summary.ece.value))
+    console.print(cal)
+
+    if summary.agreement:
+        kappa = Table(title=f"Agreement, Cohen's kappa ({level}% intervals)")
+        for column in ("raters", "cases", "unweighted", "linear", "quadratic"):
+            kappa.add_column(column)
+        for k in summary.agreement:
+            weighted = k.scale == "ordinal"
+            kappa.add_row(
+                " vs ".join(k.raters),
+                str(k.n),
+                _ci(k.unweighted),
+                _ci(k.linear) if weighted else "",
+                _ci(k.quadratic) if weighted else "",
+            )
+        console.print(kappa)
+
+    if release.subgroups:
+        groups = Table(title="Subgroups")
+        for column in ("attribute", "level", "cases", "disease", "AUC, DeLong"):
+            groups.add_column(column)
+        for g in release.subgroups:
+            groups.add_row(
+                g.attribute,
+                g.level,
+                str(g.statistics.n_observations),
+                str(g.statistics.n_positive),
+                _auc_text(g.auc),
+            )
+        console.print(groups)
+    typer.echo(RESEARCH_NOTICE)
+
+
+# --- approvals, release ledger and policy schema ------------------------------------------
+
+ledger_app = typer.Typer(
+    name="ledger",
+    help=f"Show or check the site's release ledger. {RESEARCH_NOTICE}",
+    no_args_is_help=True,
+    add_completion=False,
+)
+site_app.add_typer(ledger_app)
+
+_STORE_OPTION = typer.Option("--store", help="The site's approvals file.")
+_LEDGER_OPTION = typer.Option("--ledger", help="The site's release ledger (JSON Lines).")
+
+
+@site_app.command(
+    "approve",
+    help=f"Approve a study protocol: record its content hash, title and time. {RESEARCH_NOTICE}",
+)
+def approve_command(
+    protocol: Annotated[Path, typer.Argument(help="Study protocol JSON to approve.")],
+    store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_FILE,
+) -> None:
+    """Record a protocol's content hash in the site's approvals file."""
+    try:
+        approval = approve(StudyProtocol.load(protocol), store)
+    except SitepoolError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    typer.echo(f"approved {approval.study_id} ({approval.title})")
+    typer.echo(f"protocol hash {approval.protocol_hash}")
+    typer.echo(RESEARCH_NOTICE)
+
+
+@site_app.command("approvals", help=f"List the protocols this site approved. {RESEARCH_NOTICE}")
+def approvals_command(store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_FILE) -> None:
+    """List the approvals file."""
+    try:
+        approvals = list_approvals(store)
+    except SitepoolError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    for a in approvals:
+        typer.echo(f"{a.approved_at.isoformat()}  {a.protocol_hash}  {a.study_id}  {a.title}")
+    if not approvals:
+        typer.echo("no approved protocols")
+
+
+@site_app.command(
+    "policy-schema", help=f"Print the JSON Schema of the site policy file. {RESEARCH_NOTICE}"
+)
+def policy_schema_command() -> None:
+    """Print the policy's JSON Schema."""
+    typer.echo(json.dumps(policy_json_schema(), indent=2))
+
+
+@ledger_app.command("show", help=f"Print every ledger entry. {RESEARCH_NOTICE}")
+def ledger_show_command(
+    ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDGER_FILE,
+    as_json: Annotated[bool, typer.Option("--json", help="One JSON entry per line.")] = False,
+) -> None:
+    """Print the ledger, one line per entry."""
+    try:
+        entries = ReleaseLedger(ledger).entries()
+    except SitepoolError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    for e in entries:
+        if as_json:
+            typer.echo(e.model_dump_json())
+            continue
+        typer.echo(
+            f"{e.sequence:>5}  {e.time.isoformat()}  {e.outcome.value:<8}  "
+            f"{e.operation or '-':<9}  {e.study_id or '-'}  eps={e.epsilon_spent:g}  "
+            f"{e.reason or ''}".rstrip()
+        )
+
+
+@ledger_app.command(
+    "verify",
+    help=f"Check the ledger's hash chain; exit 1 naming the first bad entry. {RESEARCH_NOTICE}",
+)
+def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDGER_FILE) -> None:
+    """Verify the hash chain and exit 1 if any entry was changed, removed or reordered."""
+    result = verify_ledger(ledger)
+    if not result.ok:
+        typer.echo(f"ledger check FAILED: {result.problem}", err=True)
+        raise typer.Exit(code=1)
+    typer.echo(f"ledger intact: {result.entries} entries, hash chain unbroken")

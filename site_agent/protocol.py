@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 from enum import StrEnum
+from itertools import pairwise
 from pathlib import Path
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
@@ -70,7 +71,7 @@ class EvaluationPlan(_Frozen):
             raise ValueError("histogram needs at least two bins")
         if v[0] != 0.0 or v[-1] != 1.0:
             raise ValueError("histogram edges must start at 0 and end at 1")
-        if any(b <= a for a, b in zip(v, v[1:], strict=False)):
+        if any(b <= a for a, b in pairwise(v)):
             raise ValueError("histogram edges must increase strictly")
         return v
 

@@ -1,0 +1,105 @@
+"""One entry point for a study run, on either engine.
+
+``inprocess`` runs the ServerApp and every site's ClientApp in this process
+(:mod:`coordinator.inprocess`); ``loopback`` starts a real SuperLink and one SuperNode per
+site on 127.0.0.1 (:mod:`coordinator.loopback`). Both run the same
+:data:`coordinator.server_app.app` and :data:`site_agent.client_app.app`, with the same
+run config, and both hand back what the ServerApp wrote to the results file.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Literal
+
+from coordinator import server_app
+from coordinator.inprocess import run_inprocess
+from coordinator.loopback import DEFAULT_RUN_TIMEOUT_S, run_loopback
+from coordinator.rounds import StudyOutcome
+from coordinator.server_app import RunRecord, StudyRunConfig
+from site_agent import client_app
+from site_agent.exceptions import InputError
+from site_agent.protocol import StudyProtocol
+from site_agent.service import SiteSettings
+
+Engine = Literal["inprocess", "loopback"]
+PROTOCOL_FILE = "protocol.json"
+RESULTS_FILE = "study-outcome.json"
+
+
+def run_study(
+    protocol: StudyProtocol,
+    bundle_path: Path | None,
+    sites: Sequence[SiteSettings],
+    *,
+    engine: Engine,
+    workdir: Path,
+    progress: Callable[[str], None] | None = None,
+    timeout_s: float = DEFAULT_RUN_TIMEOUT_S,
+) -> StudyOutcome:
+    """Run every round of ``protocol`` at ``sites`` on the chosen engine.
+
+    Parameters
+    ----------
+    protocol
+        The pre-registered study protocol.
+    bundle_path
+        The model bundle file, or None when every site brings its own scores.
+    sites
+        One entry per site: its name and where its data lies.
+    engine
+        ``"inprocess"`` or ``"loopback"``.
+    workdir
+        Directory for the protocol copy, the results file and (loopback) Flower's files.
+    progress
+        Called with a short line at each step of a loopback run.
+    timeout_s
+        Loopback only: longest wait for the run's results.
+
+    Raises
+    ------
+    InputError
+        If no site is given, two sites share a name, or the engine is unknown.
+    DeploymentError
+        If the quorum is not met in a round, or the deployment fails.
+    """
+    if not sites:
+        raise InputError("a study needs at least one site")
+    names = [site.site for site in sites]
+    if len(set(names)) != len(names):
+        raise InputError("two sites share a name")
+    sites = [_absolute(site) for site in sites]
+    workdir = Path(workdir).resolve()
+    workdir.mkdir(parents=True, exist_ok=True)
+    protocol_path = workdir / PROTOCOL_FILE
+    protocol_path.write_text(protocol.model_dump_json(indent=2))
+    config = StudyRunConfig(
+        protocol_path=protocol_path,
+        bundle_path=None if bundle_path is None else Path(bundle_path).resolve(),
+        results_path=workdir / RESULTS_FILE,
+        expected_sites=len(sites),
+    )
+    config.results_path.unlink(missing_ok=True)
+    if engine == "inprocess":
+        run_inprocess(
+            server_app.app,
+            client_app.app,
+            [site.to_node_config() for site in sites],
+            config.to_run_config(),
+        )
+    elif engine == "loopback":
+        run_loopback(config, sites, workdir=workdir, timeout_s=timeout_s, progress=progress)
+    else:
+        raise InputError(f"unknown engine {engine!r} (use 'inprocess' or 'loopback')")
+    return RunRecord.read(config.results_path).unwrap()
+
+
+def _absolute(site: SiteSettings) -> SiteSettings:
+    """Resolve a site's paths: Flower's processes do not share our working directory."""
+    paths = {
+        name: getattr(site, name).resolve()
+        for name in ("data_path", "policy_path", "ledger_path")
+        if getattr(site, name) is not None
+    }
+    return site.model_copy(update=paths)

@@ -1,0 +1,509 @@
+"""Pooling: turn the sites' releases into the study results.
+
+Two kinds of pooled answer sit side by side, because they answer different questions:
+
+- *pooled as one cohort*: the sites' sufficient statistics are merged (counts add up)
+  and every metric is derived once from the merge, exactly as if the cases had been
+  pooled (:meth:`~site_agent.summaries.SufficientStatistics.merge`);
+- *random-effects meta-analysis*: each site's estimate is taken with its own variance
+  and the between-site variance tau² is estimated (:mod:`coordinator.meta_analysis`),
+  giving the mean performance across sites like these and a prediction interval for
+  a new site.
+
+The pooled AUC comes from the sites' score histograms, compared bin against bin (sites
+may release different bins), with the largest possible binning error beside it.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from functools import reduce
+
+from coordinator.meta_analysis import (
+    EffectSizes,
+    MetaAnalysis,
+    log_diagnostic_odds_ratio,
+    logit_auc,
+    logit_sensitivity,
+    logit_specificity,
+    meta_analyze,
+    pooled_vs_meta_note,
+)
+from coordinator.rounds import RoundOutcome
+from coordinator.study_results import (
+    CurvePoints,
+    MetaRow,
+    MetricRow,
+    ParticipantFlow,
+    SiteOutcome,
+    StudyResults,
+    TwoByTwo,
+)
+from site_agent.estimates import two_sided_z
+from site_agent.exceptions import InputError
+from site_agent.metrics import MetricsSummary, ProportionMetrics, summarize
+from site_agent.protocol import StudyProtocol
+from site_agent.release import AucRecord, EstimateRecord, SiteRelease
+from site_agent.roc import hanley_mcneil_se, mixed_histogram_auc
+from site_agent.summaries import SufficientStatistics
+
+POOLED = "pooled"
+"""Site name of the merged statistics in the results."""
+META_METHODS: tuple[tuple[str, bool], ...] = (("reml", True), ("dl", False), ("fixed", False))
+"""Meta-analyses run for every metric: REML with HKSJ (primary), DerSimonian-Laird, fixed."""
+
+
+@dataclass(frozen=True, slots=True)
+class SiteInfo:
+    """What the coordinator knows about a site beyond its release (rehearsals fill it)."""
+
+    role: str = "external"
+    description: str | None = None
+    resampled: int = 0
+
+
+def nan_if_none(value: float | None) -> float:
+    """Return ``value``, or NaN for None (the release writes undefined values as None)."""
+    return float("nan") if value is None else float(value)
+
+
+def merge_statistics(releases: Sequence[SiteRelease]) -> SufficientStatistics:
+    """Merge the sites' sufficient statistics into those of one pooled cohort."""
+    if not releases:
+        raise InputError("no site released statistics: nothing to pool")
+    return reduce(lambda a, b: a.merge(b), (r.statistics for r in releases))
+
+
+def pooled_auc(releases: Sequence[SiteRelease], confidence: float = 0.95) -> MetricRow:
+    """AUC of all sites' cases as one cohort, from the sites' score histograms.
+
+    Sites may release histograms on different bins (disclosure control merges small
+    bins), so pairs of cases are compared bin against bin
+    (:func:`site_agent.roc.mixed_histogram_auc`); the largest possible binning error is
+    reported as ``bound``. The interval is normal with the Hanley & McNeil (1982)
+    standard error, which needs only the AUC and the class sizes.
+
+    References
+    ----------
+    Hanley JA, McNeil BJ (1982). Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
+    """
+    hist = mixed_histogram_auc(
+        [(r.statistics.histogram.edges, r.statistics.histogram.positive) for r in releases],
+        [(r.statistics.histogram.edges, r.statistics.histogram.negative) for r in releases],
+    )
+    se = hanley_mcneil_se(hist.auc, hist.n_positive, hist.n_negative)
+    z = two_sided_z(confidence)
+    return MetricRow(
+        site=POOLED,
+        metric="auc",
+        method="hanley-mcneil",
+        estimate=hist.auc,
+        lower=max(0.0, hist.auc - z * se),
+        upper=min(1.0, hist.auc + z * se),
+        n=hist.n_positive + hist.n_negative,
+        reason=hist.reason,
+        bound=None if math.isnan(hist.bound) else hist.bound,
+    )
+
+
+def build_results(
+    protocol: StudyProtocol,
+    outcome: RoundOutcome,
+    *,
+    engine: str,
+    sites: Mapping[str, SiteInfo] | None = None,
+    confidence: float = 0.95,
+    notes: Sequence[str] = (),
+) -> StudyResults:
+    """Assemble the study results from one round's releases, declines and faults.
+
+    Parameters
+    ----------
+    protocol
+        The study protocol the round ran.
+    outcome
+        The round's releases by site, declines and node faults.
+    engine
+        Which engine ran the round (``inprocess`` or ``loopback``), for the record.
+    sites
+        Roles, shift descriptions and resampling counts by site name; sites that are
+        not named (or that never answered) count as external.
+    confidence
+        Two-sided level of every interval.
+    notes
+        Caveats to carry into the report.
+    """
+    info = dict(sites or {})
+    releases = [outcome.releases[name] for name in sorted(outcome.releases)]
+    metrics: list[MetricRow] = []
+    curves: list[CurvePoints] = []
+    two_by_two: list[TwoByTwo] = []
+    flow: list[ParticipantFlow] = []
+    summaries: dict[str, MetricsSummary] = {}
+    for release in releases:
+        summary = summarize(release.statistics, confidence=confidence)
+        summaries[release.site] = summary
+        metrics += _site_rows(release, summary)
+        curves += _curves(release.site, summary)
+        two_by_two += _tables(release.site, release.statistics)
+        flow.append(_flow(release.site, release.statistics, info.get(release.site, SiteInfo())))
+    meta: list[MetaRow] = []
+    if releases:
+        pooled = merge_statistics(releases)
+        summary = summarize(pooled, confidence=confidence)
+        summaries[POOLED] = summary
+        metrics += [r for r in _summary_rows(POOLED, summary) if r.metric != "auc"]
+        metrics.append(pooled_auc(releases, confidence))
+        curves += _curves(POOLED, summary)
+        two_by_two += _tables(POOLED, pooled)
+        meta = _meta_rows(releases, confidence)
+    outcomes = _outcomes(outcome, info)
+    return StudyResults(
+        study_id=protocol.study_id,
+        title=protocol.title,
+        protocol_hash=outcome.protocol_hash,
+        created_at=datetime.now(UTC),
+        engine=engine,
+        sites=outcomes,
+        metrics=metrics,
+        curves=curves,
+        two_by_two=two_by_two,
+        flow=flow,
+        meta=meta,
+        findings=_findings(outcomes, metrics, meta, info),
+        notes=[*notes, pooled_vs_meta_note()],
+    )
+
+
+def _outcomes(outcome: RoundOutcome, info: Mapping[str, SiteInfo]) -> list[SiteOutcome]:
+    rows = [
+        SiteOutcome(site=name, status="released", **_described(info.get(name)))
+        for name in sorted(outcome.releases)
+    ]
+    rows += [
+        SiteOutcome(site=d.site, status="declined", reason=d.reason, **_described(info.get(d.site)))
+        for d in outcome.declines
+    ]
+    answered = {*outcome.releases, *(d.site for d in outcome.declines)}
+    silent = sorted(set(info) - answered)
+    reasons = "; ".join(f.reason for f in outcome.faults) or "no reply before the timeout"
+    rows += [
+        SiteOutcome(site=name, status="silent", reason=reasons, **_described(info[name]))
+        for name in silent
+    ]
+    return rows
+
+
+def _described(site: SiteInfo | None) -> dict[str, str | None]:
+    site = site or SiteInfo()
+    return {"role": site.role, "description": site.description}
+
+
+def _row(
+    site: str, metric: str, record: EstimateRecord, *, threshold: float | None = None
+) -> MetricRow:
+    return MetricRow(
+        site=site,
+        metric=metric,
+        method=record.method,
+        estimate=nan_if_none(record.estimate),
+        lower=nan_if_none(record.lower),
+        upper=nan_if_none(record.upper),
+        threshold=threshold,
+        n=record.n,
+        reason=record.reason,
+    )
+
+
+def _auc_row(site: str, auc: AucRecord, method: str, bound: float | None = None) -> MetricRow:
+    logit = method.endswith("logit")
+    return MetricRow(
+        site=site,
+        metric="auc",
+        method=method,
+        estimate=nan_if_none(auc.auc),
+        lower=nan_if_none(auc.logit_lower if logit else auc.lower),
+        upper=nan_if_none(auc.logit_upper if logit else auc.upper),
+        n=auc.n_positive + auc.n_negative,
+        reason=auc.reason,
+        bound=bound,
+    )
+
+
+def _proportion_rows(
+    site: str, metric: str, p: ProportionMetrics, threshold: float
+) -> list[MetricRow]:
+    return [
+        _row(site, metric, record, threshold=threshold)
+        for record in (p.wilson, p.clopper_pearson, p.clustered)
+    ]
+
+
+def _summary_rows(site: str, summary: MetricsSummary) -> list[MetricRow]:
+    """Rows derived from sufficient statistics: the same for a site and for the pool."""
+    rows = [_row(site, "prevalence", summary.prevalence)]
+    for t in summary.thresholds:
+        for name in ("sensitivity", "specificity", "ppv", "npv"):
+            rows += _proportion_rows(site, name, getattr(t, name), t.threshold)
+        rows.append(_row(site, "accuracy", t.accuracy, threshold=t.threshold))
+        rows.append(_scalar(site, "f1", t.f1.value, t.f1.n, t.f1.reason, threshold=t.threshold))
+    rows.append(
+        MetricRow(
+            site=site,
+            metric="auc",
+            method="histogram",
+            estimate=nan_if_none(summary.auc.auc),
+            lower=float("nan"),
+            upper=float("nan"),
+            n=summary.auc.n_positive + summary.auc.n_negative,
+            reason=summary.auc.reason,
+            bound=summary.auc.bound,
+        )
+    )
+    rows.append(_scalar(site, "brier", summary.brier.value, summary.brier.n, summary.brier.reason))
+    rows.append(_scalar(site, "ece", summary.ece.value, summary.ece.n, summary.ece.reason))
+    for k in summary.agreement:
+        metric = f"kappa {k.raters[0]} vs {k.raters[1]}"
+        for record in (k.unweighted, k.linear, k.quadratic):
+            rows.append(_row(site, metric, record))
+    return rows
+
+
+def _scalar(
+    site: str,
+    metric: str,
+    value: float | None,
+    n: int,
+    reason: str | None,
+    *,
+    threshold: float | None = None,
+) -> MetricRow:
+    nan = float("nan")
+    return MetricRow(
+        site=site,
+        metric=metric,
+        method="point",
+        estimate=nan_if_none(value),
+        lower=nan,
+        upper=nan,
+        threshold=threshold,
+        n=n,
+        reason=reason,
+    )
+
+
+def _site_rows(release: SiteRelease, summary: MetricsSummary) -> list[MetricRow]:
+    site = release.site
+    exact = release.exact
+    rows = [
+        _auc_row(site, exact.auc, "delong"),
+        _auc_row(site, exact.auc, "delong-logit"),
+        _auc_row(site, exact.clustered_auc, "obuchowski"),
+        *_summary_rows(site, summary),
+        _row(site, "calibration intercept", exact.calibration.intercept),
+        _row(site, "calibration slope", exact.calibration.slope),
+    ]
+    for c in exact.readers:
+        rows.append(
+            MetricRow(
+                site=site,
+                metric=f"auc difference model - {c.reader}",
+                method="paired-delong",
+                estimate=nan_if_none(c.difference),
+                lower=nan_if_none(c.lower),
+                upper=nan_if_none(c.upper),
+                n=c.n_positive + c.n_negative,
+                reason=c.reason,
+            )
+        )
+    first = release.statistics.confusion[0].threshold if release.statistics.confusion else None
+    for group in release.subgroups:
+        label = f"{group.attribute}={group.level}"
+        rows.append(_auc_row(site, group.auc, "delong").model_copy(update={"subgroup": label}))
+        sub = summarize(group.statistics)
+        for t in sub.thresholds:
+            if t.threshold != first:
+                continue
+            for name in ("sensitivity", "specificity"):
+                p: ProportionMetrics = getattr(t, name)
+                rows.append(
+                    _row(site, name, p.wilson, threshold=t.threshold).model_copy(
+                        update={"subgroup": label}
+                    )
+                )
+    return rows
+
+
+def _curves(site: str, summary: MetricsSummary) -> list[CurvePoints]:
+    curves = []
+    if summary.roc.reason is None:
+        curves.append(
+            CurvePoints(site=site, kind="roc", x=list(summary.roc.fpr), y=list(summary.roc.tpr))
+        )
+    filled = [p for p in summary.calibration if p.n > 0 and p.mean_score is not None]
+    if filled:
+        curves.append(
+            CurvePoints(
+                site=site,
+                kind="calibration",
+                x=[nan_if_none(p.mean_score) for p in filled],
+                y=[nan_if_none(p.observed_rate) for p in filled],
+                counts=[p.n for p in filled],
+            )
+        )
+    return curves
+
+
+def _tables(site: str, statistics: SufficientStatistics) -> list[TwoByTwo]:
+    return [
+        TwoByTwo(site=site, threshold=c.threshold, tp=c.tp, fp=c.fp, fn=c.fn, tn=c.tn)
+        for c in statistics.confusion
+    ]
+
+
+def _flow(site: str, s: SufficientStatistics, info: SiteInfo) -> ParticipantFlow:
+    return ParticipantFlow(
+        site=site,
+        observations=s.n_observations,
+        patients=s.n_patients,
+        with_reference_standard=s.n_positive + s.n_negative,
+        pending_reference_standard=s.n_pending,
+        positives=s.n_positive,
+        negatives=s.n_negative,
+        resampled=info.resampled,
+    )
+
+
+def _meta_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetaRow]:
+    """Meta-analyse logit AUC, logit sensitivity and specificity, and log DOR across sites."""
+    rows: list[MetaRow] = []
+    usable = [r for r in releases if r.exact.auc.auc is not None and r.exact.auc.se]
+    if len(usable) >= 2:
+        aucs = [nan_if_none(r.exact.auc.auc) for r in usable]
+        ses = [nan_if_none(r.exact.auc.se) for r in usable]
+        rows += _meta("auc", logit_auc(aucs, ses), [r.site for r in usable], confidence)
+    with_counts = [r for r in releases if r.statistics.confusion]
+    if len(with_counts) >= 2:
+        first = [r.statistics.confusion[0] for r in with_counts]
+        labels = [r.site for r in with_counts]
+        tp, fp, fn, tn = ([getattr(c, cell) for c in first] for cell in ("tp", "fp", "fn", "tn"))
+        threshold = first[0].threshold
+        sized: list[tuple[str, Callable[[], EffectSizes]]] = [
+            (f"sensitivity@{threshold:g}", lambda: logit_sensitivity(tp, fn)),
+            (f"specificity@{threshold:g}", lambda: logit_specificity(tn, fp)),
+            (
+                f"diagnostic odds ratio@{threshold:g}",
+                lambda: log_diagnostic_odds_ratio(tp, fp, fn, tn),
+            ),
+        ]
+        for metric, effect in sized:
+            try:
+                rows += _meta(metric, effect(), labels, confidence)
+            except InputError:
+                continue  # a class absent at some site: the measure is undefined there
+    return rows
+
+
+def _meta(metric: str, effect: EffectSizes, labels: list[str], confidence: float) -> list[MetaRow]:
+    rows = []
+    for method, hksj in META_METHODS:
+        m = meta_analyze(
+            effect.estimates,
+            effect.variances,
+            labels=labels,
+            method=method,  # type: ignore[arg-type]
+            hksj=hksj,
+            confidence=confidence,
+            transform=effect.transform,
+        )
+        rows.append(_meta_row(metric, m, effect))
+    return rows
+
+
+def _meta_row(metric: str, m: MetaAnalysis, effect: EffectSizes) -> MetaRow:
+    back = m.back_transformed
+    estimate, lower, upper = (m.estimate, m.lower, m.upper)
+    pred_lower, pred_upper = (m.prediction_lower, m.prediction_upper)
+    if back is not None:
+        estimate, lower, upper = back.estimate, back.lower, back.upper
+        pred_lower, pred_upper = back.prediction_lower, back.prediction_upper
+    notes = [*effect.notes, *m.notes]
+    return MetaRow(
+        metric=metric,
+        method=m.method,
+        scale=m.scale,
+        estimate=estimate,
+        lower=lower,
+        upper=upper,
+        prediction_lower=pred_lower,
+        prediction_upper=pred_upper,
+        tau2=m.tau2,
+        i2=m.i2,
+        h2=m.h2,
+        q=m.q,
+        q_pvalue=m.q_pvalue,
+        k=m.k,
+        hksj=m.hksj,
+        note="; ".join(notes) or None,
+    )
+
+
+def _findings(
+    outcomes: Sequence[SiteOutcome],
+    metrics: Sequence[MetricRow],
+    meta: Sequence[MetaRow],
+    info: Mapping[str, SiteInfo],
+) -> list[str]:
+    """Plain-language findings: development versus external AUC, pooling, heterogeneity."""
+    aucs = {
+        r.site: r
+        for r in metrics
+        if r.metric == "auc" and r.method == "delong" and r.subgroup is None
+    }
+    findings = []
+    development = [s for s, i in info.items() if i.role == "development" and s in aucs]
+    external = sorted(
+        (r for s, r in aucs.items() if s not in development and math.isfinite(r.estimate)),
+        key=lambda r: r.estimate,
+    )
+    for site in development:
+        r = aucs[site]
+        findings.append(
+            f"At the development site {site} the AUC was {r.estimate:.3f} "
+            f"(95% CI {r.lower:.3f} to {r.upper:.3f})."
+        )
+    if external:
+        low, high = external[0], external[-1]
+        findings.append(
+            f"At the {len(external)} external sites the AUC ranged from {low.estimate:.3f} "
+            f"({low.site}) to {high.estimate:.3f} ({high.site})."
+        )
+        if development:
+            dev = aucs[development[0]].estimate
+            worse = [r for r in external if r.upper < dev]
+            if worse:
+                names = ", ".join(r.site for r in worse)
+                findings.append(
+                    f"The model performed measurably worse than at the development site at "
+                    f"{len(worse)} site(s), whose 95% CI lies wholly below the development "
+                    f"AUC: {names}."
+                )
+    for row in meta:
+        if row.metric == "auc" and row.method == "reml":
+            findings.append(
+                f"Random-effects meta-analysis (REML, HKSJ) gives a mean AUC of "
+                f"{row.estimate:.3f} (95% CI {row.lower:.3f} to {row.upper:.3f}); a new site "
+                f"should expect an AUC between {row.prediction_lower:.3f} and "
+                f"{row.prediction_upper:.3f} (95% prediction interval); I² = {100 * row.i2:.0f}%."
+            )
+    not_released = [o for o in outcomes if o.status != "released"]
+    if not_released:
+        findings.append(
+            "Sites that released nothing: "
+            + "; ".join(f"{o.site} ({o.status}: {o.reason})" for o in not_released)
+            + "."
+        )
+    return findings

@@ -1,0 +1,200 @@
+"""A rehearsal: the whole study, end to end, on synthetic sites drawn from a public dataset.
+
+The rehearsal builds the scenario's sites, develops the model at the development site
+(on a patient-grouped training part; the site evaluates on the held-out rest), writes
+each site's table where its site agent reads it, registers a protocol, and runs the
+evaluation through the same coordinator and site-agent code a real deployment uses,
+on the in-process engine or on a loopback deployment. It writes:
+
+- ``results.json``: every number, per site and pooled, with intervals;
+- ``sites.csv`` and the other CSV exports;
+- ``report.html``: the self-contained study report;
+- ``model/`` and ``run/protocol.json``: what the study ran;
+- ``site-data/<site>/``: each invented hospital's cases, policy, approvals and ledger.
+
+Invented data for rehearsal only; sitepool is a research tool, not a medical device.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Collection
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from coordinator.engines import Engine, run_study
+from coordinator.exports import write_exports
+from coordinator.pooling import SiteInfo, build_results
+from coordinator.report import render_report
+from coordinator.study_results import StudyResults
+from simulations.dataset import FeatureTable, load_public_dataset
+from simulations.development import develop_model
+from simulations.scenario import Scenario
+from simulations.sites import SyntheticSite, build_sites, development_split
+from site_agent.approvals import approve
+from site_agent.model_bundle import save_bundle
+from site_agent.policy import SitePolicy, SmallCellAction
+from site_agent.protocol import EvaluationPlan, ModelReference, StudyProtocol, uniform_edges
+from site_agent.service import SiteSettings
+
+RESULTS_FILE = "results.json"
+REPORT_FILE = "report.html"
+DEFAULT_SUBGROUPS = ("scanner_vendor",)
+HISTOGRAM_BINS = 40
+"""Fewer bins than the smallest site has cases: finer bins would resolve single cases."""
+DEFAULT_THRESHOLDS = (0.5,)
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True, slots=True)
+class RehearsalOutput:
+    """Where a rehearsal wrote its files, and the results it produced."""
+
+    results: StudyResults
+    directory: Path
+    results_path: Path
+    report_path: Path
+    exports: tuple[Path, ...]
+    seconds: float
+
+
+def rehearse(
+    scenario: Scenario,
+    out: Path,
+    *,
+    engine: Engine = "inprocess",
+    architecture: str = "logistic",
+    dataset: FeatureTable | None = None,
+    unapproved: Collection[str] = (),
+    progress: Progress | None = None,
+) -> RehearsalOutput:
+    """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
+
+    Every site gets its own disclosure policy (small cells merged, subgroups by scanner
+    vendor allowed), approves the protocol by its hash, and keeps a release ledger, all
+    under ``out/site-data/<site>/``. Sites named in ``unapproved`` do not approve the
+    protocol, so they decline, as a hospital whose ethics board has not yet signed would.
+
+    Raises
+    ------
+    InputError
+        If the scenario cannot be built from the dataset.
+    DeploymentError
+        If the engine fails or fewer sites than the quorum release statistics.
+    """
+    say = progress or (lambda _: None)
+    started = time.perf_counter()
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    dataset = dataset if dataset is not None else load_public_dataset()
+    say(f"building {len(scenario.sites)} synthetic sites from {dataset.n_cases} public cases")
+    sites = build_sites(scenario, dataset)
+    development = sites[scenario.development_index]
+    train, held_out = development_split(development, seed=scenario.seed)
+    say(f"developing a {architecture} model at {development.name} on {len(train)} cases")
+    developed = develop_model(train, architecture, seed=scenario.seed, site=development.name)
+    bundle_path = out / "model" / "model-bundle.zip"
+    bundle_path.parent.mkdir(parents=True, exist_ok=True)
+    sha256 = save_bundle(developed.model, developed.manifest, bundle_path)
+    protocol = StudyProtocol(
+        study_id=f"rehearsal-{scenario.seed}",
+        title=f"Rehearsal of an external validation across {len(sites)} invented hospitals",
+        model=ModelReference(
+            name=developed.manifest.name, architecture=architecture, sha256=sha256
+        ),
+        evaluation=EvaluationPlan(
+            thresholds=DEFAULT_THRESHOLDS,
+            histogram_edges=uniform_edges(HISTOGRAM_BINS),
+            subgroups=DEFAULT_SUBGROUPS,
+        ),
+        quorum=max(2, len(sites) // 2),
+    )
+    settings = _prepare_sites(
+        sites, development, held_out, protocol, out / "site-data", set(unapproved)
+    )
+    say(f"running the evaluation round on the {engine} engine")
+    outcome = run_study(
+        protocol, bundle_path, settings, engine=engine, workdir=out / "run", progress=say
+    )
+    info = {
+        site.name: SiteInfo(
+            role="development" if site is development else "external",
+            description=site.shift_description,
+            resampled=site.n_resampled,
+        )
+        for site in sites
+    }
+    say("pooling the releases and writing the report")
+    results = build_results(
+        protocol, outcome.rounds[-1], engine=engine, sites=info, notes=_notes(sites)
+    )
+    results_path = out / RESULTS_FILE
+    results.write_json(results_path)
+    exports = tuple(write_exports(results, out))
+    report_path = render_report(results, out / REPORT_FILE)
+    return RehearsalOutput(
+        results=results,
+        directory=out,
+        results_path=results_path,
+        report_path=report_path,
+        exports=exports,
+        seconds=time.perf_counter() - started,
+    )
+
+
+def _prepare_sites(
+    sites: list[SyntheticSite],
+    development: SyntheticSite,
+    held_out: pd.DataFrame,
+    protocol: StudyProtocol,
+    directory: Path,
+    unapproved: set[str],
+) -> list[SiteSettings]:
+    """Lay out each site as a hospital would: its table, policy, approvals and ledger.
+
+    The development site keeps only its held-out cases, so no site evaluates on a case
+    the model was trained on.
+    """
+    settings = []
+    policy = SitePolicy(
+        small_cells=SmallCellAction.MERGE, allowed_subgroup_attributes=DEFAULT_SUBGROUPS
+    )
+    for site in sites:
+        home = directory / site.spec.slug
+        home.mkdir(parents=True, exist_ok=True)
+        table = held_out if site is development else site.table
+        table.to_csv(home / "cases.csv", index=False)
+        (home / "policy.json").write_text(policy.model_dump_json(indent=2))
+        approvals = home / policy.approvals_file
+        approvals.unlink(missing_ok=True)
+        if site.name not in unapproved:
+            approve(protocol, approvals)
+        ledger = home / "ledger.jsonl"
+        settings.append(
+            SiteSettings(
+                site=site.name,
+                data_path=home / "cases.csv",
+                policy_path=home / "policy.json",
+                ledger_path=ledger,
+            )
+        )
+    return settings
+
+
+def _notes(sites: list[SyntheticSite]) -> list[str]:
+    notes = [
+        "Rehearsal on invented hospitals: sites are synthetic partitions of the Wisconsin "
+        "Diagnostic Breast Cancer data with simulated acquisition and population shifts; "
+        "no result here describes a real hospital.",
+        "The development site is evaluated only on patients held out from model training.",
+    ]
+    for site in sites:
+        if site.n_resampled:
+            notes.append(
+                f"{site.name} asked for more cases than the public data holds for it: "
+                f"{site.n_resampled} cases are resampled duplicates with small Gaussian jitter."
+            )
+    return notes

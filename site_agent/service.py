@@ -1,0 +1,162 @@
+"""The site's request handler: check a request, score and evaluate locally, answer.
+
+This module knows nothing of Flower: :func:`answer` takes a decoded
+:class:`~site_agent.wire.SiteRequest` and returns a :class:`~site_agent.wire.SiteReply`.
+It never raises. Any failure becomes a ``declined`` reply whose reason is scrubbed
+(:func:`declined_reply`): our own errors are written without values from a site's data and
+are forwarded; any other exception is reported only by its class and a fixed text. The full
+error, with its traceback, goes to the site's own log and nowhere else.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from pathlib import Path
+
+import pandas as pd
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from site_agent.evaluation import evaluate_site
+from site_agent.exceptions import BundleError, InputError, ProtocolError, SitepoolError
+from site_agent.predictions import read_table, validate_predictions
+from site_agent.protocol import Operation, StudyProtocol
+from site_agent.release import SiteRelease
+from site_agent.wire import MAX_REASON_CHARS, ReplyStatus, SiteReply, SiteRequest
+
+logger = logging.getLogger(__name__)
+
+SITE_NAME_KEY = "site-name"
+DATA_PATH_KEY = "data-path"
+POLICY_PATH_KEY = "policy-path"
+LEDGER_PATH_KEY = "ledger-path"
+"""Keys of a SuperNode's ``node_config`` that configure the site agent."""
+
+UNNAMED_SITE = "unnamed-site"
+"""Site name used in a reply when the node's configuration names no site."""
+
+_UNEXPECTED = "the site agent failed unexpectedly; details are in the site's own log"
+
+SUPPORTED_OPERATIONS: tuple[Operation, ...] = (Operation.EVALUATE,)
+
+
+class SiteSettings(BaseModel):
+    """Where a site agent finds its data and its rules (from a SuperNode's ``node_config``)."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    site: str = Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9._ -]+$")
+    data_path: Path
+    policy_path: Path | None = None
+    ledger_path: Path | None = None
+
+    @classmethod
+    def from_node_config(cls, node_config: Mapping[str, bool | int | float | str]) -> SiteSettings:
+        """Build settings from ``site-name``, ``data-path``, ``policy-path``, ``ledger-path``.
+
+        Raises
+        ------
+        InputError
+            If a key is missing or a value is invalid.
+        """
+        keys = {
+            "site": SITE_NAME_KEY,
+            "data_path": DATA_PATH_KEY,
+            "policy_path": POLICY_PATH_KEY,
+            "ledger_path": LEDGER_PATH_KEY,
+        }
+        values = {
+            field: str(node_config[key])
+            for field, key in keys.items()
+            if key in node_config and str(node_config[key]) != ""
+        }
+        try:
+            return cls.model_validate(values)
+        except ValidationError as exc:
+            first = exc.errors()[0]
+            key = keys.get(str(first["loc"][0]), "?") if first["loc"] else "?"
+            raise InputError(f"invalid node configuration: {key}: {first['msg']}") from exc
+
+    def to_node_config(self) -> dict[str, str]:
+        """Return the ``node_config`` that :meth:`from_node_config` reads back."""
+        config = {SITE_NAME_KEY: self.site, DATA_PATH_KEY: str(self.data_path)}
+        if self.policy_path is not None:
+            config[POLICY_PATH_KEY] = str(self.policy_path)
+        if self.ledger_path is not None:
+            config[LEDGER_PATH_KEY] = str(self.ledger_path)
+        return config
+
+
+def answer(request: SiteRequest, bundle: bytes | None, settings: SiteSettings) -> SiteReply:
+    """Answer one request: verify it, score the site's table if needed, evaluate, release.
+
+    Never raises: any error becomes a ``declined`` reply (see :func:`declined_reply`).
+    """
+    try:
+        release = _evaluate(request, bundle, settings)
+    except Exception as exc:  # every failure must become a scrubbed decline
+        return declined_reply(settings.site, request.request_id, exc)
+    return SiteReply(
+        site=settings.site,
+        request_id=request.request_id,
+        status=ReplyStatus.RELEASED,
+        release=release,
+    )
+
+
+def declined_reply(site: str, request_id: str, exc: BaseException) -> SiteReply:
+    """Return a ``declined`` reply for ``exc``, logging the full error locally.
+
+    The reason is the error's class and, for our own errors (written without values from
+    the site's data), their message; for any other exception a fixed text, never ``str(exc)``.
+    """
+    logger.error("site %s declined request %s", site, request_id or "(unreadable)", exc_info=exc)
+    name = type(exc).__name__
+    detail = str(exc) if isinstance(exc, SitepoolError) else _UNEXPECTED
+    reason = f"{name}: {detail}"
+    if len(reason) > MAX_REASON_CHARS:
+        reason = reason[: MAX_REASON_CHARS - 3] + "..."
+    return SiteReply(
+        site=site,
+        request_id=request_id,
+        status=ReplyStatus.DECLINED,
+        reason=reason,
+        error_class=name,
+    )
+
+
+def _evaluate(request: SiteRequest, bundle: bytes | None, settings: SiteSettings) -> SiteRelease:
+    protocol = _checked_protocol(request)
+    frame = read_table(settings.data_path)
+    if "score" not in frame.columns:
+        frame = _scored(frame, protocol, bundle)
+    predictions = validate_predictions(frame)
+    return evaluate_site(
+        predictions, protocol.evaluation, site=settings.site, protocol_hash=request.protocol_hash
+    )
+
+
+def _checked_protocol(request: SiteRequest) -> StudyProtocol:
+    protocol = StudyProtocol.from_json(request.protocol_json)
+    if protocol.content_hash() != request.protocol_hash:
+        raise ProtocolError("the protocol sent does not match its content hash")
+    if request.operation not in protocol.operations:
+        raise ProtocolError(f"operation {request.operation} is not in the study protocol")
+    if request.operation not in SUPPORTED_OPERATIONS:
+        raise ProtocolError(f"operation {request.operation} is not supported by this site agent")
+    if request.round_number > protocol.rounds:
+        raise ProtocolError("round number exceeds the rounds the protocol allows")
+    return protocol
+
+
+def _scored(frame: pd.DataFrame, protocol: StudyProtocol, bundle: bytes | None) -> pd.DataFrame:
+    """Add the model's ``score`` column to a table that has features but no scores."""
+    if protocol.model is None:
+        raise ProtocolError("the table has no score column and the protocol names no model")
+    if bundle is None:
+        raise BundleError("the table has no score column and no model bundle was sent")
+    # Imported here: torch costs seconds to import, and sites with scores never need it.
+    from site_agent.model_bundle import load_bundle
+
+    model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
+    return frame.assign(score=model.predict(frame))

@@ -1,0 +1,121 @@
+"""Tests of ``sitepool site evaluate`` through the root command, with typer's CliRunner.
+
+The example site "Northgate General" and the study below are invented.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from simulations.cli import app
+from site_agent.notices import RESEARCH_NOTICE
+from site_agent.protocol import EvaluationPlan, StudyProtocol
+from site_agent.release import SiteRelease
+
+EXAMPLE = Path(__file__).parents[2] / "examples" / "northgate_predictions.csv"
+runner = CliRunner()
+
+
+def test_json_output_is_the_release_named_after_the_file() -> None:
+    """--json prints a parseable release; the site defaults to the file stem."""
+    result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"])
+    assert result.exit_code == 0, result.stderr
+    release = SiteRelease.from_json(result.stdout)
+    assert release.site == "northgate_predictions"
+    assert release.protocol_hash == "unregistered"
+    assert release.statistics.thresholds == EvaluationPlan().thresholds
+
+
+def test_protocol_file_sets_plan_and_hash(tmp_path: Path) -> None:
+    """With --protocol the release carries the protocol's hash, thresholds and subgroups."""
+    protocol = StudyProtocol(
+        study_id="lumen-ext-val-01",
+        title="Invented external validation study",
+        evaluation=EvaluationPlan(thresholds=(0.25, 0.6), subgroups=("scanner_vendor",)),
+    )
+    path = tmp_path / "protocol.json"
+    path.write_text(protocol.canonical_json())
+    result = runner.invoke(
+        app,
+        ["site", "evaluate", str(EXAMPLE), "--json", "--protocol", str(path), "--site", "ng"],
+    )
+    assert result.exit_code == 0, result.stderr
+    release = SiteRelease.from_json(result.stdout)
+    assert release.site == "ng"
+    assert release.protocol_hash == protocol.content_hash()
+    assert release.statistics.thresholds == (0.25, 0.6)
+    assert {g.attribute for g in release.subgroups} == {"scanner_vendor"}
+
+
+def test_readable_output_shows_metrics_and_ends_with_notice() -> None:
+    """Without --json the tables show the key metrics and end with the research notice."""
+    result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE)])
+    assert result.exit_code == 0, result.stderr
+    release = SiteRelease.from_json(
+        runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout
+    )
+    assert release.exact.auc.auc is not None
+    assert f"{release.exact.auc.auc:.3f}" in result.stdout
+    for label in ("sensitivity", "specificity", "AUC, DeLong", "logit", "kappa", "slope"):
+        assert label in result.stdout
+    assert result.stdout.rstrip().endswith(RESEARCH_NOTICE)
+
+
+def test_help_says_research_tool_not_medical_device() -> None:
+    """The command's help carries the research notice."""
+    result = runner.invoke(app, ["site", "evaluate", "--help"])
+    assert result.exit_code == 0
+    assert "not a medical device" in " ".join(result.stdout.split())
+
+
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [
+        ("case_id,patient_id,label,score\nc1,p1,1,0.4\nc2,p2,0,7\n", "row 2, column 'score'"),
+        ("case_id,patient_id,label\nc1,p1,1\n", "column 'score': required column is missing"),
+        ("case_id,patient_id,label,score\nc1,p1,1,0.4\nc1,p2,0,0.2\n", "same as row 1"),
+        ("case_id,patient_id,label,score\n", "no rows"),
+        ("", "empty"),
+    ],
+)
+def test_bad_table_prints_one_error_line_and_exits_2(
+    tmp_path: Path, content: str, message: str
+) -> None:
+    """Invalid input: one 'error:' line on stderr, exit code 2, nothing on stdout."""
+    path = tmp_path / "site.csv"
+    path.write_text(content)
+    result = runner.invoke(app, ["site", "evaluate", str(path)])
+    assert result.exit_code == 2
+    assert result.stdout == ""
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and message in lines[0]
+
+
+def test_missing_file_and_bad_protocol_exit_2(tmp_path: Path) -> None:
+    """A missing table or an invalid protocol file is reported on stderr with exit code 2."""
+    missing = runner.invoke(app, ["site", "evaluate", str(tmp_path / "absent.csv")])
+    assert missing.exit_code == 2 and missing.stdout == ""
+    assert missing.stderr.startswith("error: predictions file not found")
+    bad = tmp_path / "protocol.json"
+    bad.write_text(json.dumps({"study_id": "x"}))
+    result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--protocol", str(bad)])
+    assert result.exit_code == 2 and result.stdout == ""
+    assert result.stderr.startswith("error: invalid study protocol")
+
+
+def test_missing_subgroup_column_exits_2(tmp_path: Path) -> None:
+    """A protocol asking for a subgroup column the table lacks is an input error."""
+    protocol = StudyProtocol(
+        study_id="lumen-ext-val-02",
+        title="Invented study",
+        evaluation=EvaluationPlan(subgroups=("ward",)),
+    )
+    path = tmp_path / "protocol.json"
+    path.write_text(protocol.canonical_json())
+    result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--protocol", str(path)])
+    assert result.exit_code == 2 and result.stdout == ""
+    assert "'ward'" in result.stderr
