@@ -78,34 +78,58 @@ def merge_statistics(releases: Sequence[SiteRelease]) -> SufficientStatistics:
 
 
 def pooled_auc(releases: Sequence[SiteRelease], confidence: float = 0.95) -> MetricRow:
-    """AUC of all sites' cases as one cohort, from the sites' score histograms.
+    """AUC of all sites' cases as one cohort, with the largest possible binning error.
 
-    Sites may release histograms on different bins (disclosure control merges small
-    bins), so pairs of cases are compared bin against bin
-    (:func:`site_agent.roc.mixed_histogram_auc`); the largest possible binning error is
-    reported as ``bound``. The interval is normal with the Hanley & McNeil (1982)
-    standard error, which needs only the AUC and the class sizes.
+    The cohort AUC is a weighted sum over pairs of sites ``(i, j)`` of the share of
+    (positive from ``i``, negative from ``j``) pairs ordered correctly::
+
+        AUC = Σ_ij P_i N_j AUC_ij / (P N)
+
+    Within a site (``i = j``) ``AUC_ii`` is the site's exact AUC, released as a scalar.
+    Across sites it comes from the two sites' score histograms, compared bin against bin
+    (:func:`site_agent.roc.mixed_histogram_auc`; sites may release different bins once
+    disclosure control merges small ones), and only those pairs add to the bound. A site
+    whose exact AUC is withheld (differential privacy) uses its histogram for its own
+    pairs too. The interval is normal with the Hanley & McNeil (1982) standard error,
+    which needs only the AUC and the class sizes.
 
     References
     ----------
     Hanley JA, McNeil BJ (1982). Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
     """
-    hist = mixed_histogram_auc(
-        [(r.statistics.histogram.edges, r.statistics.histogram.positive) for r in releases],
-        [(r.statistics.histogram.edges, r.statistics.histogram.negative) for r in releases],
-    )
-    se = hanley_mcneil_se(hist.auc, hist.n_positive, hist.n_negative)
+    hists = [r.statistics.histogram for r in releases]
+    pos = [sum(h.positive) for h in hists]
+    neg = [sum(h.negative) for h in hists]
+    big_p, big_n = sum(pos), sum(neg)
+    reason = None if big_p and big_n else "the pooled cases lack a class: AUC undefined"
+    value = bound = 0.0
+    for i, (hi, ri) in enumerate(zip(hists, releases, strict=True)):
+        for j, hj in enumerate(hists):
+            if not pos[i] or not neg[j] or reason:
+                continue
+            weight = pos[i] * neg[j] / (big_p * big_n)
+            exact = ri.exact.auc.auc if i == j else None
+            if exact is not None:
+                value += weight * exact
+                continue
+            pair = mixed_histogram_auc([(hi.edges, hi.positive)], [(hj.edges, hj.negative)])
+            value += weight * pair.auc
+            bound += weight * pair.bound
+    nan = float("nan")
+    if reason:
+        value = bound = nan
+    se = hanley_mcneil_se(value, big_p, big_n)
     z = two_sided_z(confidence)
     return MetricRow(
         site=POOLED,
         metric="auc",
         method="hanley-mcneil",
-        estimate=hist.auc,
-        lower=max(0.0, hist.auc - z * se),
-        upper=min(1.0, hist.auc + z * se),
-        n=hist.n_positive + hist.n_negative,
-        reason=hist.reason,
-        bound=None if math.isnan(hist.bound) else hist.bound,
+        estimate=value,
+        lower=max(0.0, value - z * se) if not reason else nan,
+        upper=min(1.0, value + z * se) if not reason else nan,
+        n=big_p + big_n,
+        reason=reason,
+        bound=None if reason else bound,
     )
 
 

@@ -7,6 +7,10 @@ a Flower error, or a reply that does not decode). The round then checks the prot
 quorum, counted in releases: fewer released sites than ``protocol.quorum`` raises
 :class:`~site_agent.exceptions.DeploymentError`.
 
+Beside each answer the round keeps what the site's disclosure control reported: its note
+of what the policy changed and the site's ledger sequence and entry hash, which anchor
+the site's release ledger outside the site.
+
 A site's identity is the name in its reply, tied to the node that sent it; a node that
 names a site another node already answered for is a fault, not a second release.
 """
@@ -18,8 +22,9 @@ from collections.abc import Iterable
 
 from flwr.app import Message
 from flwr.serverapp import Grid
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from site_agent.disclosure import DisclosureNote, read_disclosure
 from site_agent.exceptions import DeploymentError, ProtocolError
 from site_agent.protocol import Operation, StudyProtocol
 from site_agent.release import SiteRelease
@@ -59,6 +64,18 @@ class NodeFault(_Record):
     reason: str
 
 
+class SiteDisclosure(_Record):
+    """What a site's disclosure control reported beside its answer."""
+
+    note: DisclosureNote | None = Field(
+        default=None, description="What the site's policy changed in its release."
+    )
+    ledger_sequence: int | None = None
+    ledger_entry_hash: str | None = Field(
+        default=None, description="Anchors the site's release ledger outside the site."
+    )
+
+
 class RoundOutcome(_Record):
     """What one evaluation round produced."""
 
@@ -69,6 +86,9 @@ class RoundOutcome(_Record):
     node_of_site: dict[str, int] = Field(description="Flower node id of each answering site.")
     declines: list[SiteDecline]
     faults: list[NodeFault]
+    disclosures: dict[str, SiteDisclosure] = Field(
+        default_factory=dict, description="Disclosure notes and ledger anchors by site name."
+    )
 
 
 class StudyOutcome(_Record):
@@ -140,6 +160,7 @@ def _sorted_replies(
 ) -> RoundOutcome:
     releases: dict[str, SiteRelease] = {}
     node_of_site: dict[str, int] = {}
+    disclosures: dict[str, SiteDisclosure] = {}
     declines: list[SiteDecline] = []
     faults: list[NodeFault] = []
     answered: set[int] = set()
@@ -161,6 +182,7 @@ def _sorted_replies(
             faults.append(NodeFault(node_id=node_id, reason=_short(str(exc))))
             continue
         node_of_site[answer.site] = node_id
+        disclosures[answer.site] = _disclosure(reply)
         if answer.status is ReplyStatus.RELEASED and answer.release is not None:
             releases[answer.site] = answer.release
         else:
@@ -184,6 +206,7 @@ def _sorted_replies(
         node_of_site=dict(sorted(node_of_site.items())),
         declines=sorted(declines, key=lambda d: d.site),
         faults=sorted(faults, key=lambda f: f.node_id),
+        disclosures=dict(sorted(disclosures.items())),
     )
 
 
@@ -198,6 +221,15 @@ def _checked_reply(reply: Message, request: SiteRequest, node_of_site: dict[str,
     if answer.release is not None and answer.release.protocol_hash != request.protocol_hash:
         raise ProtocolError("release was computed under a different protocol")
     return answer
+
+
+def _disclosure(reply: Message) -> SiteDisclosure:
+    """Read the disclosure record beside a reply; an unreadable one counts as absent."""
+    try:
+        note, sequence, digest = read_disclosure(reply)
+    except ValidationError:
+        return SiteDisclosure()
+    return SiteDisclosure(note=note, ledger_sequence=sequence, ledger_entry_hash=digest)
 
 
 def _short(text: str) -> str:

@@ -27,6 +27,10 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    (:mod:`site_agent.privacy_budget`); rules 2-5 then run on the noisy values, which is
    post-processing. The exact site-level estimates and the patient moments are withheld,
    since their sensitivity is not bounded; the unit of privacy is one case (observation).
+   Attribute counts are withheld under differential privacy.
+7. Attribute counts (case mix of a monitoring window): small levels are pooled under one
+   level name, with secondary pooling until the pooled count is 0 or at least ``m``; the
+   counts are withheld when pending cases are (they include them).
 
 Limits, said plainly
 --------------------
@@ -40,6 +44,7 @@ combination of releases can reveal; the count rules are the customary first line
 
 from __future__ import annotations
 
+import itertools
 import json
 import logging
 from collections.abc import Callable, Mapping, Sequence
@@ -56,7 +61,7 @@ from site_agent.ledger import LedgerSession, Outcome, ReleaseLedger
 from site_agent.policy import SitePolicy, SmallCellAction
 from site_agent.privacy_budget import check_budget, noised_release
 from site_agent.protocol import StudyProtocol
-from site_agent.release import SiteRelease
+from site_agent.release import POOLED_LEVELS, AttributeCounts, SiteRelease
 from site_agent.service import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY, UNNAMED_SITE
 from site_agent.summaries import (
     AgreementTable,
@@ -105,6 +110,7 @@ class RefusalCode(StrEnum):
     MODEL_BUNDLE_INVALID = "model_bundle_invalid"
     SITE_DATA_INVALID = "site_data_invalid"
     SITE_ERROR = "site_error"
+    WINDOW_WITHOUT_CASES = "window_without_cases"
 
 
 REFUSAL_TEXT: Mapping[RefusalCode, str] = {
@@ -126,6 +132,7 @@ REFUSAL_TEXT: Mapping[RefusalCode, str] = {
     RefusalCode.MODEL_BUNDLE_INVALID: "the model bundle failed the site's checks",
     RefusalCode.SITE_DATA_INVALID: "the site's data failed validation; see the site's log",
     RefusalCode.SITE_ERROR: "the site agent failed; details are in the site's own log",
+    RefusalCode.WINDOW_WITHOUT_CASES: "no case at this site was acquired in the time window",
 }
 
 _ERROR_CODES: Mapping[str, RefusalCode] = {
@@ -133,6 +140,7 @@ _ERROR_CODES: Mapping[str, RefusalCode] = {
     "BundleError": RefusalCode.MODEL_BUNDLE_INVALID,
     "InputError": RefusalCode.SITE_DATA_INVALID,
     "PredictionsError": RefusalCode.SITE_DATA_INVALID,
+    "EmptyWindowError": RefusalCode.WINDOW_WITHOUT_CASES,
 }
 
 
@@ -197,6 +205,9 @@ def check_request(
         raise _refuse(RefusalCode.OPERATION_NOT_ALLOWED, operation)
     if any(a not in policy.allowed_subgroup_attributes for a in protocol.evaluation.subgroups):
         raise _refuse(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED, operation)
+    mix = protocol.monitoring.mix_attributes if protocol.monitoring is not None else ()
+    if any(a not in policy.allowed_subgroup_attributes for a in mix):
+        raise _refuse(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED, operation)
     return protocol
 
 
@@ -224,12 +235,17 @@ def apply_policy(
     """
     if any(s.attribute not in policy.allowed_subgroup_attributes for s in release.subgroups):
         raise _refuse(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED)
+    if any(a.attribute not in policy.allowed_subgroup_attributes for a in release.attribute_counts):
+        raise _refuse(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED)
     note = _Note(policy)
     if epsilon is not None:
         noised = noised_release(release, epsilon)
         release = noised.release
         note.epsilon, note.noise_scale = epsilon, noised.noise_scale
         note.withheld.extend(noised.withheld)
+        if release.attribute_counts:
+            release = release.model_copy(update={"attribute_counts": ()})
+            note.withheld.append("attribute_counts")
     m = policy.min_cell
     stats = release.statistics
     _check_resolution(stats)
@@ -257,6 +273,9 @@ def apply_policy(
                 for i, sub in enumerate(release.subgroups)
             ),
         }
+    )
+    controlled = controlled.model_copy(
+        update={"attribute_counts": _attribute_counts(release.attribute_counts, m, note)}
     )
     # Rebuild through validation so the controlled release is a valid SiteRelease.
     return SiteRelease.model_validate(controlled.model_dump()), note.freeze()
@@ -393,23 +412,39 @@ def _agreement(t: AgreementTable, m: int, path: str, note: _Note) -> AgreementTa
 
 
 def _groups(rows: Sequence[Sequence[int]], m: int) -> list[tuple[int, int]]:
-    """Group adjacent bins, left to right, until every row's sum in a group is 0 or >= m.
+    """Group adjacent bins so every row's sum in a group is 0 or >= m, losing least order.
 
-    A last group that falls short is merged into the groups before it. Callers have made
-    sure every row's total is itself 0 or >= m, so one group always suffices.
+    Among all such partitions into contiguous groups, dynamic programming picks the one
+    with the fewest (first row × second row) pairs inside a group, i.e. the fewest
+    positive-negative pairs whose order the merged histogram no longer shows (the AUC's
+    binning bound, :func:`site_agent.roc.histogram_auc`), and among those the most groups.
+    Callers have made sure every row's total is itself 0 or >= m, so a partition exists.
     """
     bins = len(rows[0])
-    groups: list[tuple[int, int]] = []
-    start = 0
+    prefix = [[0, *itertools.accumulate(r)] for r in rows]
+
+    def total(row: int, start: int, end: int) -> int:
+        return prefix[row][end] - prefix[row][start]
+
+    inf = (float("inf"), 0)
+    best: list[tuple[float, int]] = [(0.0, 0), *([inf] * bins)]  # (lost pairs, -groups)
+    cut = [0] * (bins + 1)
     for end in range(1, bins + 1):
-        if all(_ok(sum(r[start:end]), m) for r in rows):
-            groups.append((start, end))
-            start = end
-    while start < bins and groups and not all(_ok(sum(r[start:]), m) for r in rows):
-        start = groups.pop()[0]
-    if start < bins:
-        groups.append((start, bins))
-    return groups
+        for start in range(end):
+            if best[start] == inf:
+                continue
+            if not all(_ok(total(r, start, end), m) for r in range(len(rows))):
+                continue
+            lost = best[start][0] + total(0, start, end) * total(1, start, end)
+            candidate = (lost, best[start][1] - 1)
+            if candidate < best[end]:
+                best[end], cut[end] = candidate, start
+    groups: list[tuple[int, int]] = []
+    end = bins
+    while end > 0:
+        groups.append((cut[end], end))
+        end = cut[end]
+    return groups[::-1]
 
 
 def _histogram(
@@ -459,6 +494,43 @@ def _calibration(
         label_sum=keep(c.label_sum),
         squared_error_sum=keep(c.squared_error_sum),
     )
+
+
+def _attribute_counts(
+    mixes: tuple[AttributeCounts, ...], m: int, note: _Note
+) -> tuple[AttributeCounts, ...]:
+    """Rule 7: pool small attribute levels, and withhold the counts with pending cases.
+
+    Levels with a small count are pooled under :data:`POOLED_LEVELS`; while the pooled
+    total is itself small, the smallest remaining level joins it (secondary suppression),
+    so no small count can be recovered by subtracting released counts from the total.
+    The counts include pending cases, so when those are withheld the counts are too.
+    """
+    if not mixes:
+        return mixes
+    if "statistics.pending" in note.withheld:
+        note.withheld.append("attribute_counts")
+        return ()
+    out = []
+    for i, mix in enumerate(mixes):
+        ordered = sorted((c, level) for level, c in mix.as_dict().items() if c > 0)
+        pooled = [(c, level) for c, level in ordered if not _ok(c, m)]
+        kept = [(c, level) for c, level in ordered if _ok(c, m)]
+        while pooled and kept and not _ok(sum(c for c, _ in pooled), m):
+            pooled.append(kept.pop(0))
+        counts = dict((level, c) for c, level in kept)
+        if pooled:
+            counts[POOLED_LEVELS] = sum(c for c, _ in pooled)
+            note.merged.append(f"attribute_counts[{i}]")
+        levels = tuple(sorted(counts))
+        out.append(
+            AttributeCounts(
+                attribute=mix.attribute,
+                levels=levels,
+                counts=tuple(counts[level] for level in levels),
+            )
+        )
+    return tuple(out)
 
 
 # --------------------------------------------------------------------------- the mod

@@ -7,6 +7,8 @@ histogram and in agreement tables, which need no label.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 from pydantic import ValidationError
 
@@ -15,6 +17,8 @@ from site_agent.exceptions import InputError
 from site_agent.predictions import MISSING, Predictions
 from site_agent.protocol import EvaluationPlan
 from site_agent.release import (
+    MAX_MIX_LEVELS,
+    AttributeCounts,
     AucRecord,
     CalibrationRecord,
     EstimateRecord,
@@ -36,6 +40,7 @@ def evaluate_site(
     site: str,
     protocol_hash: str,
     confidence: float = DEFAULT_CONFIDENCE,
+    mix_attributes: Sequence[str] = (),
 ) -> SiteRelease:
     """Compute everything an evaluation releases from one site.
 
@@ -51,6 +56,8 @@ def evaluate_site(
         Content hash of the study protocol, or ``"unregistered"`` for a local run.
     confidence
         Two-sided level of every interval.
+    mix_attributes
+        Case attributes whose level counts the release carries (monitoring of case mix).
 
     Raises
     ------
@@ -58,7 +65,7 @@ def evaluate_site(
         If a subgroup attribute is not a column of the table, a subgroup level name is
         unusable, or the site name or protocol hash is malformed.
     """
-    for attribute in plan.subgroups:
+    for attribute in (*plan.subgroups, *mix_attributes):
         if attribute not in predictions.attributes:
             raise InputError(
                 f"subgroup attribute {attribute!r} is not a case attribute column of the table"
@@ -71,6 +78,7 @@ def evaluate_site(
             statistics=compute_statistics(predictions, plan, scales=scales),
             exact=_exact(predictions, scales, confidence),
             subgroups=tuple(_subgroups(predictions, plan, scales, confidence)),
+            attribute_counts=tuple(_attribute_counts(predictions, mix_attributes)),
         )
     except ValidationError as exc:
         first = exc.errors()[0]
@@ -134,4 +142,24 @@ def _subgroups(
                     auc=_labelled_auc(subset, confidence),
                 )
             )
+    return out
+
+
+def _attribute_counts(
+    predictions: Predictions, attributes: Sequence[str]
+) -> list[AttributeCounts]:
+    out = []
+    for attribute in attributes:
+        levels, counts = np.unique(predictions.attributes[attribute], return_counts=True)
+        if levels.size > MAX_MIX_LEVELS:
+            raise InputError(
+                f"attribute {attribute!r} has more than {MAX_MIX_LEVELS} levels to count"
+            )
+        out.append(
+            AttributeCounts(
+                attribute=attribute,
+                levels=tuple(str(v) for v in levels),
+                counts=tuple(int(c) for c in counts),
+            )
+        )
     return out

@@ -5,7 +5,8 @@ Every error the project raises derives from :class:`SitepoolError`::
     SitepoolError
     ├── InputError               bad input from a user or a file; nothing was released
     │   ├── PredictionsError     a predictions table failed validation (row, column)
-    │   └── ScenarioError        a simulation scenario file is invalid
+    │   ├── ScenarioError        a simulation scenario file is invalid
+    │   └── EmptyWindowError     a monitoring request's time window holds no case
     ├── ProtocolError            a study protocol is malformed or does not match its hash
     ├── BundleError              a model bundle is missing, corrupt or fails its hash check
     ├── DisclosureRefused        a site's policy refused a request (reason, operation)
@@ -54,6 +55,10 @@ class PredictionsError(InputError):
 
 class ScenarioError(InputError):
     """A simulation scenario file is invalid."""
+
+
+class EmptyWindowError(InputError):
+    """A monitoring request's time window holds no case at the site; nothing to release."""
 
 
 class ProtocolError(SitepoolError):

@@ -26,12 +26,11 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
-
-import opendp.prelude as dp
 
 from site_agent.exceptions import InputError
 from site_agent.policy import PrivacySettings
@@ -43,13 +42,20 @@ from site_agent.summaries import (
     SufficientStatistics,
 )
 
-dp.enable_features("contrib")
-
 WITHHELD = "withheld by the site's differential privacy setting"
 """Reason given in place of an estimate that noise cannot protect."""
 
 # Slack for floating-point sums of epsilons (e.g. ten releases of 0.1 against 1.0).
 _EPSILON_SLACK = 1e-9
+
+
+@functools.cache
+def _opendp() -> Any:
+    """Import OpenDP on first use: it costs seconds, and most releases add no noise."""
+    import opendp.prelude as dp
+
+    dp.enable_features("contrib")
+    return dp
 
 
 def laplace_scale(*, epsilon: float, sensitivity: int) -> float:
@@ -84,6 +90,7 @@ def noisy_counts(counts: Sequence[int], *, epsilon: float, sensitivity: int) -> 
     if not values:
         return []
     scale = laplace_scale(epsilon=epsilon, sensitivity=sensitivity)
+    dp = _opendp()
     space = dp.vector_domain(dp.atom_domain(T=int)), dp.l1_distance(T=int)
     measurement = space >> dp.m.then_laplace(scale=scale)
     # OpenDP's own privacy map must confirm the loss we account for.
@@ -107,6 +114,7 @@ def noisy_sums(sums: Sequence[float], *, epsilon: float, sensitivity: float) -> 
     if not (sensitivity > 0 and math.isfinite(sensitivity)):
         raise InputError("sensitivity must be a positive number")
     scale = sensitivity * laplace_scale(epsilon=epsilon, sensitivity=1)
+    dp = _opendp()
     space = dp.vector_domain(dp.atom_domain(T=float, nan=False)), dp.l1_distance(T=float)
     measurement = space >> dp.m.then_laplace(scale=scale)
     if measurement.map(float(sensitivity)) > epsilon * (1 + _EPSILON_SLACK):

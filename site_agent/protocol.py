@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+from datetime import date
 from enum import StrEnum
 from itertools import pairwise
 from pathlib import Path
@@ -21,6 +22,9 @@ DEFAULT_THRESHOLDS: tuple[float, ...] = (0.5,)
 DEFAULT_HISTOGRAM_BINS = 100
 DEFAULT_CALIBRATION_BINS = 10
 DEFAULT_REPLY_TIMEOUT_S = 300.0
+DEFAULT_WINDOW_MONTHS = 1
+DEFAULT_BASELINE_WINDOWS = 3
+MAX_WINDOWS = 240
 
 
 def uniform_edges(bins: int) -> tuple[float, ...]:
@@ -84,6 +88,84 @@ class ModelReference(_Frozen):
     sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
 
 
+class MonitoringPlan(_Frozen):
+    """Repeated evaluation of each site over consecutive time windows of ``acquired_on``.
+
+    Window ``i`` (from 0) covers ``[first_window_start + i·window_months,
+    first_window_start + (i+1)·window_months)`` in calendar months. The first
+    ``baseline_windows`` windows are each site's reference for drift.
+    """
+
+    first_window_start: date = Field(description="Start of the first window (inclusive).")
+    window_months: int = Field(default=DEFAULT_WINDOW_MONTHS, ge=1, le=24)
+    windows: int = Field(ge=2, le=MAX_WINDOWS, description="Number of consecutive windows.")
+    baseline_windows: int = Field(default=DEFAULT_BASELINE_WINDOWS, ge=1)
+    mix_attributes: tuple[str, ...] = Field(
+        default=(), description="Case attributes whose level counts a window release carries."
+    )
+
+    @model_validator(mode="after")
+    def _baseline_before_end(self) -> MonitoringPlan:
+        if self.baseline_windows >= self.windows:
+            raise ValueError("baseline_windows must be fewer than windows")
+        return self
+
+
+class FederatedStrategy(StrEnum):
+    """How federated fine-tuning aggregates the sites' updates (Flower's strategies)."""
+
+    FEDAVG = "fedavg"
+    FEDPROX = "fedprox"
+
+
+class UpdateNoise(_Frozen):
+    """Clipping and Gaussian noise on each site's weight update (Flower's ``LocalDpMod``)."""
+
+    clipping_norm: float = Field(gt=0, description="L2 bound on a site's update.")
+    sensitivity: float = Field(ge=0)
+    epsilon: float = Field(gt=0)
+    delta: float = Field(gt=0, lt=1)
+
+
+class AdaptationPlan(_Frozen):
+    """Site-local and federated fine-tuning of the model under study (operation fine_tune).
+
+    Each site splits its labelled cases once, by patient and stratified by label, with
+    ``seed`` into a local training pool and a held-out test set (``test_fraction`` of
+    patients). Fine-tuning only ever sees the pool; every metric is computed on the test set.
+    For each count in ``case_counts`` (and the whole pool when ``include_all``) and each of
+    ``repeats`` seeds, the site draws that many pool cases by whole patients and fine-tunes
+    for ``epochs`` full-batch steps with an L2 pull towards the starting weights. No model
+    selection happens anywhere: the number of steps is fixed here, in advance.
+    """
+
+    case_counts: tuple[int, ...] = Field(
+        default=(0, 10, 25, 50, 100), description="Local training cases to try (0: none)."
+    )
+    include_all: bool = Field(default=True, description="Also fine-tune on the whole pool.")
+    repeats: int = Field(default=5, ge=1, le=50, description="Seeds per case count.")
+    seed: int = Field(default=0, ge=0, description="Seeds the split; repeat r uses seed + r.")
+    test_fraction: float = Field(default=0.4, gt=0.0, lt=1.0)
+    epochs: int = Field(default=60, ge=1, le=10_000, description="Full-batch steps.")
+    learning_rate: float = Field(default=0.05, gt=0.0, le=10.0)
+    l2_to_initial: float = Field(default=0.01, ge=0.0, description="Pull to start weights.")
+    margin: float = Field(
+        default=0.02, ge=0.0, lt=1.0, description="AUC margin to the development site."
+    )
+    federated_rounds: int = Field(default=10, ge=0, le=1000)
+    local_epochs: int = Field(default=6, ge=1, le=10_000, description="Steps per round.")
+    strategy: FederatedStrategy = FederatedStrategy.FEDAVG
+    proximal_mu: float = Field(default=0.1, ge=0.0, description="FedProx only.")
+    update_noise: UpdateNoise | None = None
+
+    @field_validator("case_counts")
+    @classmethod
+    def _counts(cls, v: tuple[int, ...]) -> tuple[int, ...]:
+        if any(n < 0 for n in v):
+            raise ValueError("case counts must be non-negative")
+        return tuple(sorted(set(v)))
+
+
 class StudyProtocol(_Frozen):
     """A pre-registered multi-site study protocol."""
 
@@ -97,16 +179,33 @@ class StudyProtocol(_Frozen):
     rounds: int = Field(default=1, ge=1)
     quorum: int = Field(default=2, ge=1, description="Minimum sites that must reply.")
     reply_timeout_s: float = Field(default=DEFAULT_REPLY_TIMEOUT_S, gt=0)
+    monitoring: MonitoringPlan | None = Field(
+        default=None, description="Windowed monitoring rounds; None for a one-off evaluation."
+    )
+    adaptation: AdaptationPlan | None = Field(
+        default=None, description="Fine-tuning plan; needed by the fine_tune operation."
+    )
 
     @model_validator(mode="after")
     def _operations_not_empty(self) -> StudyProtocol:
         if not self.operations:
             raise ValueError("a protocol needs at least one operation")
+        if self.monitoring is not None and self.rounds < self.monitoring.windows:
+            raise ValueError("a monitoring protocol needs at least one round per window")
         return self
 
     def canonical_json(self) -> str:
-        """Return the protocol as JSON with sorted keys and no whitespace (what is hashed)."""
-        return json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+        """Return the protocol as JSON with sorted keys and no whitespace (what is hashed).
+
+        A protocol without monitoring (or adaptation) leaves that key out, so protocols
+        written before these plans existed keep their hash (and their sites' approvals).
+        """
+        data = self.model_dump(mode="json")
+        if self.monitoring is None:
+            del data["monitoring"]
+        if self.adaptation is None:
+            del data["adaptation"]
+        return json.dumps(data, sort_keys=True, separators=(",", ":"))
 
     def content_hash(self) -> str:
         """Return the SHA-256 hex digest of :meth:`canonical_json`."""

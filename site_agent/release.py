@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from site_agent.estimates import Estimate
 from site_agent.exceptions import InputError
@@ -26,6 +26,11 @@ UNREGISTERED_PROTOCOL = "unregistered"
 MAX_READERS = 50
 MAX_SUBGROUPS = 200
 """Most subgroup levels one release may carry."""
+MAX_MIX_ATTRIBUTES = 10
+MAX_MIX_LEVELS = 50
+"""Most attributes, and levels per attribute, of a release's attribute counts."""
+POOLED_LEVELS = "(levels below the minimum cell)"
+"""Level name under which a site's disclosure step pools small attribute levels."""
 SITE_NAME_PATTERN = r"^[A-Za-z0-9._ -]+$"
 UNDEFINED = "not defined on these data"
 """Reason given when a library result is NaN without saying why."""
@@ -180,6 +185,30 @@ class SubgroupRelease(_Record):
     auc: AucRecord
 
 
+class AttributeCounts(_Record):
+    """How many of the site's cases fall in each level of one case attribute (e.g. vendor).
+
+    Counts every case, pending labels too. The disclosure step pools small levels under
+    :data:`POOLED_LEVELS`, so a rare level's name and count do not leave the site.
+    """
+
+    attribute: str = Field(min_length=1, max_length=80)
+    levels: tuple[str, ...] = Field(max_length=MAX_MIX_LEVELS)
+    counts: tuple[int, ...] = Field(max_length=MAX_MIX_LEVELS)
+
+    @model_validator(mode="after")
+    def _one_count_per_level(self) -> AttributeCounts:
+        if len(self.levels) != len(self.counts) or len(set(self.levels)) != len(self.levels):
+            raise ValueError("attribute counts need one count per distinct level")
+        if any(c < 0 for c in self.counts) or any(not 1 <= len(v) <= 80 for v in self.levels):
+            raise ValueError("attribute counts must be non-negative, level names 1-80 chars")
+        return self
+
+    def as_dict(self) -> dict[str, int]:
+        """Return the counts by level name."""
+        return dict(zip(self.levels, self.counts, strict=True))
+
+
 class SiteRelease(_Record):
     """Everything one evaluation releases from one site."""
 
@@ -188,6 +217,9 @@ class SiteRelease(_Record):
     statistics: SufficientStatistics
     exact: ExactEstimates
     subgroups: tuple[SubgroupRelease, ...] = Field(default=(), max_length=MAX_SUBGROUPS)
+    attribute_counts: tuple[AttributeCounts, ...] = Field(
+        default=(), max_length=MAX_MIX_ATTRIBUTES
+    )
 
     def to_json(self) -> str:
         """Return the release as JSON, exactly as it would leave the site."""

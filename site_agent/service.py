@@ -14,15 +14,22 @@ import logging
 from collections.abc import Mapping
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from site_agent.evaluation import evaluate_site
-from site_agent.exceptions import BundleError, InputError, ProtocolError, SitepoolError
-from site_agent.predictions import read_table, validate_predictions
+from site_agent.exceptions import (
+    BundleError,
+    EmptyWindowError,
+    InputError,
+    ProtocolError,
+    SitepoolError,
+)
+from site_agent.predictions import Predictions, read_table, validate_predictions
 from site_agent.protocol import Operation, StudyProtocol
 from site_agent.release import SiteRelease
-from site_agent.wire import MAX_REASON_CHARS, ReplyStatus, SiteReply, SiteRequest
+from site_agent.wire import MAX_REASON_CHARS, ReplyStatus, SiteReply, SiteRequest, TimeWindow
 
 logger = logging.getLogger(__name__)
 
@@ -37,7 +44,7 @@ UNNAMED_SITE = "unnamed-site"
 
 _UNEXPECTED = "the site agent failed unexpectedly; details are in the site's own log"
 
-SUPPORTED_OPERATIONS: tuple[Operation, ...] = (Operation.EVALUATE,)
+SUPPORTED_OPERATIONS: tuple[Operation, ...] = (Operation.EVALUATE, Operation.MONITOR)
 
 
 class SiteSettings(BaseModel):
@@ -131,9 +138,38 @@ def _evaluate(request: SiteRequest, bundle: bytes | None, settings: SiteSettings
     if "score" not in frame.columns:
         frame = _scored(frame, protocol, bundle)
     predictions = validate_predictions(frame)
+    if request.window is not None:
+        predictions = window_predictions(predictions, request.window)
+    mix = protocol.monitoring.mix_attributes if protocol.monitoring is not None else ()
     return evaluate_site(
-        predictions, protocol.evaluation, site=settings.site, protocol_hash=request.protocol_hash
+        predictions,
+        protocol.evaluation,
+        site=settings.site,
+        protocol_hash=request.protocol_hash,
+        mix_attributes=mix if request.operation is Operation.MONITOR else (),
     )
+
+
+def window_predictions(predictions: Predictions, window: TimeWindow) -> Predictions:
+    """Return the cases acquired in ``[window.start, window.end)``.
+
+    Cases without an acquisition date are in no window.
+
+    Raises
+    ------
+    InputError
+        If the table has no ``acquired_on`` column.
+    EmptyWindowError
+        If no case falls in the window (declined rather than released empty).
+    """
+    if predictions.acquired_on is None:
+        raise InputError("a windowed request needs an acquired_on column in the site's table")
+    dates = predictions.acquired_on.astype("datetime64[D]")
+    start, end = np.datetime64(window.start, "D"), np.datetime64(window.end, "D")
+    inside = (dates >= start) & (dates < end)
+    if not inside.any():
+        raise EmptyWindowError("the requested time window holds no case at this site")
+    return predictions.subset(inside)
 
 
 def _checked_protocol(request: SiteRequest) -> StudyProtocol:
@@ -146,6 +182,8 @@ def _checked_protocol(request: SiteRequest) -> StudyProtocol:
         raise ProtocolError(f"operation {request.operation} is not supported by this site agent")
     if request.round_number > protocol.rounds:
         raise ProtocolError("round number exceeds the rounds the protocol allows")
+    if request.operation is Operation.MONITOR and request.window is None:
+        raise ProtocolError("a monitoring request must name a time window")
     return protocol
 
 

@@ -14,6 +14,7 @@ value's type. Decoding anything malformed raises :class:`~site_agent.exceptions.
 
 from __future__ import annotations
 
+from datetime import date
 from enum import StrEnum
 from typing import TypeVar
 
@@ -52,6 +53,19 @@ class _Wire(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid")
 
 
+class TimeWindow(_Wire):
+    """Acquisition dates ``[start, end)`` a request is limited to (monitoring rounds)."""
+
+    start: date
+    end: date
+
+    @model_validator(mode="after")
+    def _ordered(self) -> TimeWindow:
+        if self.end <= self.start:
+            raise ValueError("a time window must end after it starts")
+        return self
+
+
 class SiteRequest(_Wire):
     """One instruction from the coordinator to one site."""
 
@@ -60,6 +74,9 @@ class SiteRequest(_Wire):
     protocol_hash: str = Field(pattern=r"^[0-9a-f]{64}$", description="SHA-256 it must match.")
     round_number: int = Field(ge=1)
     request_id: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9._-]+$")
+    window: TimeWindow | None = Field(
+        default=None, description="Evaluate only cases acquired in this window (monitoring)."
+    )
 
 
 class SiteReply(_Wire):

@@ -21,6 +21,7 @@ from coordinator.rounds import RoundOutcome, StudyOutcome, run_evaluation_round,
 from site_agent import client_app
 from site_agent.approvals import approve
 from site_agent.exceptions import DeploymentError
+from site_agent.ledger import ReleaseLedger
 from site_agent.protocol import StudyProtocol
 from site_agent.release import SiteRelease
 from site_agent.service import SiteSettings
@@ -165,3 +166,17 @@ def test_study_outcome_survives_a_json_round_trip(
     run_inprocess(server, client_app.app, [s.to_node_config() for s in three_sites], {})
 
     assert StudyOutcome.model_validate_json(outcomes[0].model_dump_json()) == outcomes[0]
+
+
+def test_round_keeps_each_sites_ledger_anchor(
+    study_protocol: StudyProtocol, three_sites: list[SiteSettings]
+) -> None:
+    """The entry hash kept per site is the last entry of that site's own ledger file."""
+    outcome = _one_round(study_protocol, three_sites)
+
+    for site in three_sites:
+        assert site.ledger_path is not None
+        last = ReleaseLedger(site.ledger_path).entries()[-1]
+        kept = outcome.disclosures[site.site]
+        assert (kept.ledger_sequence, kept.ledger_entry_hash) == (last.sequence, last.entry_hash)
+        assert kept.note is not None and kept.note.min_cell == 5

@@ -1,0 +1,102 @@
+"""End-to-end rehearsals on the in-process engine: the whole job, on the public dataset."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from sklearn.metrics import roc_auc_score
+
+from coordinator.study_results import StudyResults
+from simulations.rehearsal import rehearse
+from simulations.scenario import default_scenario
+from site_agent.ledger import verify_ledger
+from site_agent.notices import RESEARCH_NOTICE
+
+
+@pytest.fixture(scope="module")
+def default_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[StudyResults, Path]:
+    out = tmp_path_factory.mktemp("rehearsal")
+    output = rehearse(default_scenario(), out)
+    return output.results, out
+
+
+def test_rehearsal_writes_results_sites_csv_and_report(
+    default_run: tuple[StudyResults, Path],
+) -> None:
+    """results.json, sites.csv and a report naming every site are written."""
+    results, out = default_run
+    assert (
+        StudyResults.read_json(out / "results.json").model_dump_json() == results.model_dump_json()
+    )
+    sites = pd.read_csv(out / "sites.csv")
+    assert set(sites["site"]) == {s.name for s in default_scenario().sites}
+    html = (out / "report.html").read_text()
+    for site in default_scenario().sites:
+        assert site.name in html
+    assert RESEARCH_NOTICE in html
+
+
+def test_rehearsal_site_auc_matches_sklearn_on_the_site_table(
+    default_run: tuple[StudyResults, Path],
+) -> None:
+    """Each site's released DeLong AUC equals scikit-learn's AUC of the model on its table."""
+    from site_agent.model_bundle import load_bundle
+
+    results, out = default_run
+    bundle = load_bundle(out / "model" / "model-bundle.zip")
+    for spec in default_scenario().sites:
+        table = pd.read_csv(out / "site-data" / spec.slug / "cases.csv")
+        expected = roc_auc_score(table["label"], bundle.predict(table))  # scikit-learn reference
+        row = next(
+            m
+            for m in results.metrics
+            if m.site == spec.name
+            and m.metric == "auc"
+            and m.method == "delong"
+            and m.subgroup is None
+        )
+        assert row.estimate == pytest.approx(expected, abs=1e-12)
+
+
+def test_default_scenario_shows_degradation_at_shifted_sites(
+    default_run: tuple[StudyResults, Path],
+) -> None:
+    """High AUC at the development site, and external sites whose CI lies below it."""
+    results, _ = default_run
+    auc = {
+        m.site: m
+        for m in results.metrics
+        if m.metric == "auc" and m.method == "delong" and m.subgroup is None
+    }
+    development = default_scenario().development_site
+    assert auc[development].estimate > 0.95
+    below = [s for s, m in auc.items() if s != development and m.upper < auc[development].estimate]
+    assert len(below) >= 3
+    assert any("measurably worse" in f for f in results.findings)
+
+
+def test_every_site_ledger_verifies_after_the_rehearsal(
+    default_run: tuple[StudyResults, Path],
+) -> None:
+    """Each site recorded its release in a ledger whose hash chain verifies."""
+    _, out = default_run
+    for spec in default_scenario().sites:
+        check = verify_ledger(out / "site-data" / spec.slug / "ledger.jsonl")
+        assert check.ok and check.entries == 1
+
+
+def test_rehearsal_completes_with_one_site_declining(tmp_path: Path) -> None:
+    """A site that never approved the protocol declines; the study goes on with the rest."""
+    scenario = default_scenario()
+    refusing = scenario.sites[2].name
+    output = rehearse(scenario, tmp_path, unapproved={refusing})
+    outcome = {s.site: s for s in output.results.sites}
+    assert outcome[refusing].status == "declined"
+    assert outcome[refusing].reason is not None and "approv" in outcome[refusing].reason
+    assert all(s.status == "released" for name, s in outcome.items() if name != refusing)
+    assert refusing in (tmp_path / "report.html").read_text()
+    ledger = (tmp_path / "site-data" / scenario.sites[2].slug / "ledger.jsonl").read_text()
+    assert json.loads(ledger.splitlines()[-1])["outcome"] == "declined"
