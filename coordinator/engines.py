@@ -16,6 +16,7 @@ from typing import Literal
 from coordinator import server_app
 from coordinator.inprocess import run_inprocess
 from coordinator.loopback import DEFAULT_RUN_TIMEOUT_S, run_loopback
+from coordinator.monitoring import MonitoringOutcome
 from coordinator.rounds import StudyOutcome
 from coordinator.server_app import RunRecord, StudyRunConfig
 from site_agent import client_app
@@ -64,12 +65,51 @@ def run_study(
     DeploymentError
         If the quorum is not met in a round, or the deployment fails.
     """
+    config = _configured(protocol, bundle_path, sites, workdir, store_path=None)
+    _deploy(config, sites, engine=engine, workdir=workdir, progress=progress, timeout_s=timeout_s)
+    return RunRecord.read(config.results_path).unwrap()
+
+
+def run_monitoring(
+    protocol: StudyProtocol,
+    bundle_path: Path | None,
+    sites: Sequence[SiteSettings],
+    *,
+    store_path: Path,
+    engine: Engine,
+    workdir: Path,
+    progress: Callable[[str], None] | None = None,
+    timeout_s: float = DEFAULT_RUN_TIMEOUT_S,
+) -> MonitoringOutcome:
+    """Run one monitoring round per window of ``protocol.monitoring`` on the chosen engine.
+
+    Each window's releases go into the SQLite results store at ``store_path``; windows
+    already stored there are skipped (see :mod:`coordinator.monitoring`). Other
+    parameters and errors are those of :func:`run_study`.
+    """
+    if protocol.monitoring is None:
+        raise InputError("the protocol has no monitoring plan")
+    config = _configured(
+        protocol, bundle_path, sites, workdir, store_path=Path(store_path).resolve()
+    )
+    _deploy(config, sites, engine=engine, workdir=workdir, progress=progress, timeout_s=timeout_s)
+    return RunRecord.read(config.results_path).unwrap_monitoring()
+
+
+def _configured(
+    protocol: StudyProtocol,
+    bundle_path: Path | None,
+    sites: Sequence[SiteSettings],
+    workdir: Path,
+    *,
+    store_path: Path | None,
+) -> StudyRunConfig:
+    """Check the sites, write the protocol copy, and return the ServerApp's run config."""
     if not sites:
         raise InputError("a study needs at least one site")
     names = [site.site for site in sites]
     if len(set(names)) != len(names):
         raise InputError("two sites share a name")
-    sites = [_absolute(site) for site in sites]
     workdir = Path(workdir).resolve()
     workdir.mkdir(parents=True, exist_ok=True)
     protocol_path = workdir / PROTOCOL_FILE
@@ -79,8 +119,24 @@ def run_study(
         bundle_path=None if bundle_path is None else Path(bundle_path).resolve(),
         results_path=workdir / RESULTS_FILE,
         expected_sites=len(sites),
+        store_path=store_path,
     )
     config.results_path.unlink(missing_ok=True)
+    return config
+
+
+def _deploy(
+    config: StudyRunConfig,
+    sites: Sequence[SiteSettings],
+    *,
+    engine: Engine,
+    workdir: Path,
+    progress: Callable[[str], None] | None,
+    timeout_s: float,
+) -> None:
+    """Run the ServerApp with ``config`` against ``sites`` on the chosen engine."""
+    sites = [_absolute(site) for site in sites]
+    workdir = Path(workdir).resolve()
     if engine == "inprocess":
         run_inprocess(
             server_app.app,
@@ -92,7 +148,6 @@ def run_study(
         run_loopback(config, sites, workdir=workdir, timeout_s=timeout_s, progress=progress)
     else:
         raise InputError(f"unknown engine {engine!r} (use 'inprocess' or 'loopback')")
-    return RunRecord.read(config.results_path).unwrap()
 
 
 def _absolute(site: SiteSettings) -> SiteSettings:

@@ -61,7 +61,7 @@ _STATUS = {"released": "Released", "declined": "Declined", "silent": "No reply"}
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,"Helvetica Neue",Arial,sans-serif;
 margin:0;color:#1d1d1f;background:#fafafa;line-height:1.45}
-main{max-width:1120px;margin:0 auto;padding:24px 32px 48px;background:#fff}
+main{max-width:1280px;margin:0 auto;padding:24px 32px 48px;background:#fff}
 h1{font-size:1.7em;margin:.2em 0}h2{font-size:1.3em;margin-top:2em;
 border-bottom:2px solid #d0d7de;padding-bottom:.2em}h3{font-size:1.05em;margin-top:1.4em}
 .caution{border:2px solid #b42318;background:#fef3f2;color:#7a1a12;padding:12px 16px;
@@ -70,7 +70,7 @@ border-radius:6px;font-weight:600;margin:16px 0}
 .meta dt{color:#555}.meta dd{margin:0}code{font-size:.9em;word-break:break-all}
 .summary{font-size:1.05em;background:#f5f8fc;border-left:4px solid #1f77b4;padding:10px 16px}
 nav ol{columns:2;font-size:.92em}
-table{border-collapse:collapse;margin:8px 0 16px;font-size:.88em}
+table{border-collapse:collapse;margin:8px 0 16px;font-size:.82em}
 caption{text-align:left;font-weight:600;padding:4px 0;color:#333}
 th,td{border:1px solid #d8dde3;padding:4px 8px;vertical-align:top}
 th{background:#eef2f6;text-align:left}tbody tr:nth-child(even){background:#f8fafc}
@@ -180,7 +180,8 @@ def _num(metric: str, value: float) -> str:
 def _interval(metric: str, lower: float, upper: float) -> str:
     if not (math.isfinite(lower) and math.isfinite(upper)):
         return ""
-    return f"{_num(metric, lower)}–{_num(metric, upper)}"
+    separator = " to " if lower < 0 else "–"  # a dash between negative numbers misreads
+    return f"{_num(metric, lower)}{separator}{_num(metric, upper)}"
 
 
 def _cell(row: MetricRow | None) -> str:
@@ -402,32 +403,34 @@ def _estimates_section(results: StudyResults) -> str:
     overall = [r for r in results.metrics if r.subgroup is None]
     exact = {(r.site, r.metric, r.method, r.threshold): r for r in reversed(overall)}
     sites = _site_order(results)
-    order = ["auc", "brier", "ece", "calibration_slope", "calibration_intercept", "kappa"]
-    plain = [r for r in overall if r.threshold is None]
-    columns = list(
-        dict.fromkeys(
-            (m, r.method)
-            for m in _ordered((r.metric for r in plain), order)
-            for r in plain
-            if r.metric == m
-        )
-    )
     header = ["Site", "n"] + [
-        f"{_label(m)}<br><span class=small>{_e(_method_header(k))}</span>" for m, k in columns
+        f"{_e(title)}<br><span class=small>{_e(sub)}</span>" for _, _, title, sub in _HEADLINE
     ]
     rows = []
     for site in sites:
-        found = [exact.get((site, m, k, None)) for m, k in columns]
+        found = [
+            exact.get((site, metric, method, None))
+            or (exact.get((site, metric, "hanley-mcneil", None)) if method == "delong" else None)
+            for metric, method, _, _ in _HEADLINE
+        ]
         present = [r for r in found if r is not None]
         if present:
             n = str(max(r.n for r in present))
-            rows.append([_site_label(results, site), n] + [_cell(r) for r in found])
+            cells = [_headline_cell(r) for r in found]
+            rows.append([_site_label(results, site), n, *cells])
     out = _table(
         "table-site-metrics",
         "Discrimination and calibration per site: estimate (95% CI)",
         header,
         rows,
     )
+    out += (
+        '<p class="small">For all cases as one cohort the AUC compares cases across sites '
+        "through their score histograms; its interval uses the Hanley–McNeil standard "
+        "error and ± gives the largest possible error from binning. Histogram AUCs of "
+        "single sites are shown with the same bound.</p>"
+    )
+    out += _readers_table(results, sites, overall)
     threshold_metrics = _ordered(
         (r.metric for r in overall if r.threshold is not None),
         ["sensitivity", "specificity", "ppv", "npv"],
@@ -460,6 +463,53 @@ def _estimates_section(results: StudyResults) -> str:
         '<p class="small">A dash marks a value that is undefined at that site; the reason '
         "follows it. The development site (tagged) is where the model was built; its "
         "numbers are not external validation.</p>"
+    )
+
+
+_HEADLINE: tuple[tuple[str, str, str, str], ...] = (
+    ("auc", "delong", "AUC", "DeLong CI"),
+    ("auc", "delong-logit", "AUC", "logit-scale CI"),
+    ("auc", "obuchowski", "AUC", "patient-clustered CI"),
+    ("auc", "histogram", "AUC from score bins", "± binning bound"),
+    ("brier", "point", "Brier score", "lower is better"),
+    ("ece", "point", "ECE", "calibration error"),
+    ("calibration intercept", "logistic-recalibration", "Calibration", "intercept, ideally zero"),
+    ("calibration slope", "logistic-recalibration", "Calibration", "slope, ideally one"),
+)
+"""Columns of the per-site table: (metric, method, heading, sub-heading)."""
+
+
+def _headline_cell(row: MetricRow | None) -> str:
+    if row is not None and row.bound is not None and math.isfinite(row.estimate):
+        text = _cell(row) if math.isfinite(row.lower) else _num(row.metric, row.estimate)
+        return f'{text} <span class="ci">±{row.bound:.3f}</span>'
+    return _cell(row)
+
+
+def _readers_table(results: StudyResults, sites: Sequence[str], rows: list[MetricRow]) -> str:
+    """Agreement (Cohen's kappa) and paired AUC comparisons with readers, per site."""
+    body = []
+    for site in sites:
+        kappas: dict[str, dict[str, MetricRow]] = {}
+        for r in rows:
+            if r.site == site and r.metric.startswith("kappa "):
+                kappas.setdefault(r.metric.removeprefix("kappa "), {})[r.method] = r
+        for pair, by_method in kappas.items():
+            kinds = ("cohen-kappa", "cohen-kappa-linear", "cohen-kappa-quadratic")
+            cells = [by_method.get(m) for m in kinds]
+            body.append([_site_label(results, site), _e(pair), *(_cell(c) for c in cells), ""])
+        for r in rows:
+            if r.site == site and r.metric.startswith("auc difference"):
+                who = r.metric.removeprefix("auc difference ")
+                body.append([_site_label(results, site), _e(who), "", "", "", _cell(r)])
+    if not body:
+        return ""
+    return _table(
+        "table-readers",
+        "Agreement with readers (Cohen's kappa, 95% CI) and paired DeLong AUC differences",
+        ["Site", "Raters", "Kappa", "Linear weighted", "Quadratic weighted", "AUC difference"],
+        body,
+        text_columns=(0, 1),
     )
 
 

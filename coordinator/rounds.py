@@ -24,6 +24,7 @@ from flwr.app import Message
 from flwr.serverapp import Grid
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from coordinator.fine_tuning import FineTuningOutcome
 from site_agent.disclosure import DisclosureNote, read_disclosure
 from site_agent.exceptions import DeploymentError, ProtocolError
 from site_agent.protocol import Operation, StudyProtocol
@@ -97,6 +98,9 @@ class StudyOutcome(_Record):
     study_id: str
     protocol_hash: str
     rounds: list[RoundOutcome]
+    fine_tuning: FineTuningOutcome | None = Field(
+        default=None, description="Site-local and federated fine-tuning, if the protocol asks."
+    )
 
 
 def run_evaluation_round(

@@ -16,16 +16,21 @@ from flwr.app import Context
 from flwr.serverapp import Grid, ServerApp
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from coordinator.fine_tuning import run_fine_tuning
+from coordinator.monitoring import MonitoringOutcome, run_monitoring_rounds
+from coordinator.results_store import SqliteResultsStore
 from coordinator.rounds import StudyOutcome, run_study_rounds
 from site_agent.exceptions import DeploymentError, InputError
-from site_agent.protocol import StudyProtocol
+from site_agent.protocol import Operation, StudyProtocol
 
 PROTOCOL_PATH_KEY = "protocol-path"
 BUNDLE_PATH_KEY = "bundle-path"
 RESULTS_PATH_KEY = "results-path"
 EXPECTED_SITES_KEY = "expected-sites"
 NODE_WAIT_KEY = "node-wait-s"
-"""Keys of the run config this app reads."""
+STORE_PATH_KEY = "store-path"
+"""Keys of the run config this app reads; a store path switches the app to monitoring
+(:func:`~coordinator.monitoring.run_monitoring_rounds`, one round per time window)."""
 
 DEFAULT_NODE_WAIT_S = 60.0
 _NODE_POLL_S = 0.5
@@ -41,6 +46,9 @@ class StudyRunConfig(BaseModel):
     results_path: Path
     expected_sites: int = Field(ge=1)
     node_wait_s: float = Field(default=DEFAULT_NODE_WAIT_S, gt=0)
+    store_path: Path | None = Field(
+        default=None, description="Results store of a monitoring run; None for a study run."
+    )
 
     @classmethod
     def from_run_config(cls, run_config: dict[str, bool | int | float | str]) -> StudyRunConfig:
@@ -57,6 +65,7 @@ class StudyRunConfig(BaseModel):
             "results_path": RESULTS_PATH_KEY,
             "expected_sites": EXPECTED_SITES_KEY,
             "node_wait_s": NODE_WAIT_KEY,
+            "store_path": STORE_PATH_KEY,
         }
         values = {
             field: run_config[key]
@@ -71,13 +80,16 @@ class StudyRunConfig(BaseModel):
 
     def to_run_config(self) -> dict[str, bool | int | float | str]:
         """Return the run config :meth:`from_run_config` reads back."""
-        return {
+        config: dict[str, bool | int | float | str] = {
             PROTOCOL_PATH_KEY: str(self.protocol_path),
             BUNDLE_PATH_KEY: "" if self.bundle_path is None else str(self.bundle_path),
             RESULTS_PATH_KEY: str(self.results_path),
             EXPECTED_SITES_KEY: self.expected_sites,
             NODE_WAIT_KEY: self.node_wait_s,
         }
+        if self.store_path is not None:
+            config[STORE_PATH_KEY] = str(self.store_path)
+        return config
 
 
 class RunRecord(BaseModel):
@@ -86,6 +98,7 @@ class RunRecord(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=True)
 
     outcome: StudyOutcome | None = None
+    monitoring: MonitoringOutcome | None = None
     error_class: str | None = None
     error: str | None = None
 
@@ -94,6 +107,12 @@ class RunRecord(BaseModel):
         if self.outcome is None:
             raise DeploymentError(f"the study run failed: {self.error_class}: {self.error}")
         return self.outcome
+
+    def unwrap_monitoring(self) -> MonitoringOutcome:
+        """Return the monitoring outcome, or raise :class:`DeploymentError` with the error."""
+        if self.monitoring is None:
+            raise DeploymentError(f"the monitoring run failed: {self.error_class}: {self.error}")
+        return self.monitoring
 
     @classmethod
     def read(cls, path: Path) -> RunRecord:
@@ -112,11 +131,14 @@ def main(grid: Grid, context: Context) -> None:
     """Run the study named in the run config and write its :class:`RunRecord`."""
     config = StudyRunConfig.from_run_config(context.run_config)
     try:
-        outcome = run_configured_study(grid, config)
+        if config.store_path is not None:
+            record = RunRecord(monitoring=run_configured_monitoring(grid, config))
+        else:
+            record = RunRecord(outcome=run_configured_study(grid, config))
     except Exception as exc:  # recorded for the engine that waits on the file, then re-raised
         _write(config.results_path, RunRecord(error_class=type(exc).__name__, error=str(exc)))
         raise
-    _write(config.results_path, RunRecord(outcome=outcome))
+    _write(config.results_path, record)
 
 
 def run_configured_study(grid: Grid, config: StudyRunConfig) -> StudyOutcome:
@@ -124,7 +146,21 @@ def run_configured_study(grid: Grid, config: StudyRunConfig) -> StudyOutcome:
     protocol = StudyProtocol.load(config.protocol_path)
     bundle = None if config.bundle_path is None else _read_bundle(config.bundle_path)
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
-    return run_study_rounds(grid, protocol, bundle)
+    outcome = run_study_rounds(grid, protocol, bundle)
+    if Operation.FINE_TUNE in protocol.operations and bundle is not None:
+        fine_tuning = run_fine_tuning(grid, protocol, bundle)
+        outcome = outcome.model_copy(update={"fine_tuning": fine_tuning})
+    return outcome
+
+
+def run_configured_monitoring(grid: Grid, config: StudyRunConfig) -> MonitoringOutcome:
+    """Load the protocol and bundle, wait for the sites, run one round per window."""
+    assert config.store_path is not None  # checked by the caller
+    protocol = StudyProtocol.load(config.protocol_path)
+    bundle = None if config.bundle_path is None else _read_bundle(config.bundle_path)
+    _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
+    with SqliteResultsStore(config.store_path) as store:
+        return run_monitoring_rounds(grid, protocol, bundle, store)
 
 
 def _read_bundle(path: Path) -> bytes:

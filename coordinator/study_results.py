@@ -114,6 +114,52 @@ class SiteOutcome(_Record):
     description: str | None = Field(default=None, description="Shift description (rehearsal).")
 
 
+class AdaptationRow(_Record):
+    """One point of an adaptation curve: a metric after fine-tuning on n local cases.
+
+    Combined over the repeats (seeds) by Rubin's rules on the logit scale; see
+    :func:`coordinator.adaptation.combine_over_seeds`.
+    """
+
+    site: str = Field(description="Site name, or 'pooled' (mean over sites).")
+    metric: str = Field(description="auc, sensitivity or specificity.")
+    n_cases: int | None = Field(description="Local training cases asked for; None: whole pool.")
+    n_used: Number = Field(description="Mean cases actually used (whole patients).")
+    estimate: Number
+    lower: Number
+    upper: Number
+    seed_min: Number = Field(description="Smallest estimate over the seeds.")
+    seed_max: Number = Field(description="Largest estimate over the seeds.")
+    repeats: int = 0
+    threshold: float | None = None
+    method: str = "rubin-logit"
+    reason: str | None = None
+
+
+class AdequateCases(_Record):
+    """The smallest number of local cases whose mean AUC comes within the margin."""
+
+    site: str
+    reference_auc: Number = Field(description="The development site's AUC.")
+    margin: float
+    n_cases: int | None = Field(description="Smallest adequate count; None if none was.")
+    whole_pool: bool = Field(default=False, description="Only the whole pool was adequate.")
+    reason: str | None = None
+
+
+class ReferenceLine(_Record):
+    """One site's AUC under one of the four reference lines, on its held-out test set."""
+
+    site: str
+    line: str = Field(description="none, site-local, federated or centralized.")
+    estimate: Number
+    lower: Number
+    upper: Number
+    method: str
+    n: int = 0
+    reason: str | None = None
+
+
 class StudyResults(_Record):
     """Everything a study produced."""
 
@@ -129,6 +175,9 @@ class StudyResults(_Record):
     two_by_two: list[TwoByTwo] = Field(default_factory=list)
     flow: list[ParticipantFlow] = Field(default_factory=list)
     meta: list[MetaRow] = Field(default_factory=list)
+    adaptation: list[AdaptationRow] = Field(default_factory=list)
+    adequate_cases: list[AdequateCases] = Field(default_factory=list)
+    reference_lines: list[ReferenceLine] = Field(default_factory=list)
     findings: list[str] = Field(default_factory=list, description="Plain-language findings.")
     notes: list[str] = Field(default_factory=list, description="Caveats, e.g. resampling.")
 

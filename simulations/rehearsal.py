@@ -61,33 +61,30 @@ class RehearsalOutput:
     seconds: float
 
 
-def rehearse(
+@dataclass(frozen=True, slots=True)
+class PreparedStudy:
+    """A rehearsal laid out on disk, ready for an engine to run."""
+
+    protocol: StudyProtocol
+    bundle_path: Path
+    settings: list[SiteSettings]
+    sites: list[SyntheticSite]
+
+
+def prepare_study(
     scenario: Scenario,
     out: Path,
     *,
-    engine: Engine = "inprocess",
     architecture: str = "logistic",
     dataset: FeatureTable | None = None,
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
-) -> RehearsalOutput:
-    """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
+) -> PreparedStudy:
+    """Build the sites, develop and bundle the model, register the protocol, lay out sites.
 
-    Every site gets its own disclosure policy (small cells merged, subgroups by scanner
-    vendor allowed), approves the protocol by its hash, and keeps a release ledger, all
-    under ``out/site-data/<site>/``. Sites named in ``unapproved`` do not approve the
-    protocol, so they decline, as a hospital whose ethics board has not yet signed would.
-
-    Raises
-    ------
-    InputError
-        If the scenario cannot be built from the dataset.
-    DeploymentError
-        If the engine fails or fewer sites than the quorum release statistics.
+    Each site's cases, policy, approvals and ledger go under ``out/site-data/<site>/``.
     """
     say = progress or (lambda _: None)
-    started = time.perf_counter()
-    out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     dataset = dataset if dataset is not None else load_public_dataset()
     say(f"building {len(scenario.sites)} synthetic sites from {dataset.n_cases} public cases")
@@ -115,6 +112,51 @@ def rehearse(
     settings = _prepare_sites(
         sites, development, held_out, protocol, out / "site-data", set(unapproved)
     )
+    return PreparedStudy(protocol, bundle_path, settings, sites)
+
+
+def rehearse(
+    scenario: Scenario,
+    out: Path,
+    *,
+    engine: Engine = "inprocess",
+    architecture: str = "logistic",
+    dataset: FeatureTable | None = None,
+    unapproved: Collection[str] = (),
+    progress: Progress | None = None,
+) -> RehearsalOutput:
+    """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
+
+    Every site gets its own disclosure policy (small cells merged, subgroups by scanner
+    vendor allowed), approves the protocol by its hash, and keeps a release ledger, all
+    under ``out/site-data/<site>/``. Sites named in ``unapproved`` do not approve the
+    protocol, so they decline, as a hospital whose ethics board has not yet signed would.
+
+    Raises
+    ------
+    InputError
+        If the scenario cannot be built from the dataset.
+    DeploymentError
+        If the engine fails or fewer sites than the quorum release statistics.
+    """
+    say = progress or (lambda _: None)
+    started = time.perf_counter()
+    out = Path(out)
+    study = prepare_study(
+        scenario,
+        out,
+        architecture=architecture,
+        dataset=dataset,
+        unapproved=unapproved,
+        progress=say,
+    )
+    protocol, bundle_path, settings, sites = (
+        study.protocol,
+        study.bundle_path,
+        study.settings,
+        study.sites,
+    )
+    development = sites[scenario.development_index]
     say(f"running the evaluation round on the {engine} engine")
     outcome = run_study(
         protocol, bundle_path, settings, engine=engine, workdir=out / "run", progress=say

@@ -138,6 +138,28 @@ class SiteSpec(_Model):
         return re.sub(r"[^a-z0-9]+", "-", self.name.lower()).strip("-") or "site"
 
 
+class DriftEvent(_Model):
+    """A change at one site from a given month on (see ``simulations.drift_events``).
+
+    Every field left unset keeps the site's own value; cases acquired from the start of
+    month ``from_month`` (1 = the scenario's first month) are drawn with the new values.
+    """
+
+    site: str = Field(description="Name of the site that changes.")
+    from_month: int = Field(ge=2, le=240, description="First month (1-based) of the change.")
+    description: str = Field(default="", max_length=200, description="What happened, in words.")
+    acquisition: AcquisitionShift | None = Field(
+        default=None, description="New acquisition shift (a scanner change)."
+    )
+    vendor_mix: dict[str, float] | None = Field(default=None, description="New vendor mix.")
+    prevalence: float | None = Field(default=None, gt=0.0, lt=1.0, description="New prevalence.")
+
+    @field_validator("vendor_mix")
+    @classmethod
+    def _valid_mix(cls, v: dict[str, float] | None) -> dict[str, float] | None:
+        return None if v is None else _check_mix(v)
+
+
 class Scenario(_Model):
     """A set of synthetic sites drawn from one public dataset."""
 
@@ -162,12 +184,25 @@ class Scenario(_Model):
         description="Gaussian jitter on resampled duplicates, as a fraction of feature SD.",
     )
     sites: tuple[SiteSpec, ...] = Field(min_length=1)
+    drift_events: tuple[DriftEvent, ...] = Field(
+        default=(), description="Changes at sites over time, for monitoring rehearsals."
+    )
+    pending_label_months: int = Field(
+        default=0,
+        ge=0,
+        le=240,
+        description="Labels of cases acquired in the last this-many months are still pending.",
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> Scenario:
         names = [s.name for s in self.sites]
         if len(set(names)) != len(names):
             raise ValueError("site names must be unique")
+        if any(e.site not in names for e in self.drift_events):
+            raise ValueError("every drift event must name one of the sites")
+        if any(e.from_month > self.months for e in self.drift_events):
+            raise ValueError("a drift event must start within the scenario's months")
         if self.development_site not in names:
             raise ValueError("development_site must name one of the sites")
         if len({s.slug for s in self.sites}) != len(names):

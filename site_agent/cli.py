@@ -11,12 +11,13 @@ from rich.console import Console
 from rich.table import Table
 
 from site_agent.approvals import approve, list_approvals
+from site_agent.disclosure import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import SitepoolError
 from site_agent.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
 from site_agent.metrics import MetricsSummary, summarize
 from site_agent.notices import RESEARCH_NOTICE
-from site_agent.policy import DEFAULT_APPROVALS_FILE, policy_json_schema
+from site_agent.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
 from site_agent.predictions import load_predictions
 from site_agent.protocol import EvaluationPlan, StudyProtocol
 from site_agent.release import UNREGISTERED_PROTOCOL, AucRecord, EstimateRecord, SiteRelease
@@ -47,6 +48,17 @@ def evaluate_command(
     site: Annotated[
         str | None, typer.Option("--site", help="Site name; default: the file name's stem.")
     ] = None,
+    policy: Annotated[
+        Path | None,
+        typer.Option(
+            "--policy",
+            help=(
+                "The site's disclosure policy: apply it (small cells merged or suppressed, "
+                "subgroup rules) and show what the policy lets leave. Differential privacy "
+                "noise is not drawn here, so nothing is charged to the budget."
+            ),
+        ),
+    ] = None,
 ) -> None:
     """Evaluate a predictions table and show what would leave the site."""
     try:
@@ -59,6 +71,10 @@ def evaluate_command(
         release = evaluate_site(
             table, plan, site=site or predictions.stem, protocol_hash=protocol_hash
         )
+        if policy is not None:
+            release, note = apply_policy(release, SitePolicy.load(policy))
+            if not as_json:
+                typer.echo(f"disclosure policy applied: {note.model_dump_json()}")
         summary = summarize(release.statistics)
     except SitepoolError as exc:
         typer.echo(f"error: {exc}", err=True)

@@ -8,13 +8,25 @@ read, or a node configuration it cannot use, is answered with a scrubbed ``decli
 
 from __future__ import annotations
 
-from flwr.app import Context, Message
+import numpy as np
+from flwr.app import Array, ArrayRecord, Context, Message, MetricRecord, RecordDict
 from flwr.clientapp import ClientApp
 from flwr.clientapp.typing import Mod
 
 from site_agent.disclosure import disclosure_mod
+from site_agent.exceptions import ProtocolError
+from site_agent.predictions import read_table
+from site_agent.protocol import StudyProtocol
 from site_agent.service import SITE_NAME_KEY, UNNAMED_SITE, SiteSettings, answer, declined_reply
-from site_agent.wire import SITE_ACTION, decode_request, encode_reply
+from site_agent.update_disclosure import (
+    NUM_EXAMPLES,
+    PROXIMAL_MU,
+    TRAIN_ARRAYS,
+    TRAIN_CONFIG,
+    TRAIN_METRICS,
+    read_train_request,
+)
+from site_agent.wire import SITE_ACTION, WEIGHTS_RECORD, decode_request, encode_reply
 
 SITE_MODS: list[Mod] = [disclosure_mod]
 """Mods applied to every message this app handles, outermost first."""
@@ -34,5 +46,48 @@ def evaluate(msg: Message, context: Context) -> Message:
     except Exception as exc:  # an unreadable request or configuration is declined, scrubbed
         reply = declined_reply(site[:80], request_id, exc)
     else:
-        reply = answer(request, bundle, settings)
+        reply = answer(request, bundle, settings, weights=sent_weights(msg.content))
     return Message(encode_reply(reply), reply_to=msg)
+
+
+@app.train()
+def train(msg: Message, context: Context) -> Message:
+    """Train on this site's local pool for one round of a Flower strategy.
+
+    Only reached through :func:`site_agent.disclosure.disclosure_mod`, which has checked
+    the request and declines (scrubbed) whatever this handler raises.
+    """
+    # Imported here: torch costs seconds to import, and evaluation-only sites never need it.
+    from site_agent.local_training import local_data, train_round
+    from site_agent.model_bundle import load_bundle
+
+    request, bundle = read_train_request(msg.content)
+    protocol = StudyProtocol.from_json(request.protocol_json)
+    if protocol.model is None or protocol.adaptation is None:
+        raise ProtocolError("fine_tune needs a protocol that names a model and an adaptation plan")
+    settings = SiteSettings.from_node_config(context.node_config)
+    model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
+    data = local_data(read_table(settings.data_path), model, protocol.adaptation)
+    mu = msg.content.config_records[TRAIN_CONFIG].get(PROXIMAL_MU, 0.0)
+    incoming = msg.content.array_records[TRAIN_ARRAYS]
+    state, n = train_round(
+        data,
+        model,
+        {k: v.numpy() for k, v in incoming.items()},
+        protocol.adaptation,
+        proximal_mu=float(mu) if isinstance(mu, int | float) else 0.0,
+    )
+    content = RecordDict(
+        {
+            TRAIN_ARRAYS: ArrayRecord({k: Array(v) for k, v in state.items()}),
+            TRAIN_METRICS: MetricRecord({NUM_EXAMPLES: n}),
+        }
+    )
+    return Message(content, reply_to=msg)
+
+
+def sent_weights(content: RecordDict) -> dict[str, np.ndarray] | None:
+    """Return the weights a request carries in :data:`~site_agent.wire.WEIGHTS_RECORD`."""
+    if WEIGHTS_RECORD not in content.array_records:
+        return None
+    return {k: v.numpy() for k, v in content.array_records[WEIGHTS_RECORD].items()}

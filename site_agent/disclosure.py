@@ -52,9 +52,10 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
-from flwr.app import ConfigRecord, Context, Message
+from flwr.app import ConfigRecord, Context, Message, MessageType
 from pydantic import BaseModel, ConfigDict
 
+from site_agent.adaptation_release import control_adaptation
 from site_agent.approvals import ApprovalStatus, approval_status
 from site_agent.exceptions import DisclosureRefused
 from site_agent.ledger import LedgerSession, Outcome, ReleaseLedger
@@ -111,9 +112,13 @@ class RefusalCode(StrEnum):
     SITE_DATA_INVALID = "site_data_invalid"
     SITE_ERROR = "site_error"
     WINDOW_WITHOUT_CASES = "window_without_cases"
+    NOT_COVERED_BY_PRIVACY = "not_covered_by_privacy"
 
 
 REFUSAL_TEXT: Mapping[RefusalCode, str] = {
+    RefusalCode.NOT_COVERED_BY_PRIVACY: (
+        "the site's differential privacy does not cover this output, so it is not released"
+    ),
     RefusalCode.POLICY_UNAVAILABLE: "the site's policy or ledger is not configured or readable",
     RefusalCode.REQUEST_UNREADABLE: "the request is not a well-formed sitepool request",
     RefusalCode.COORDINATOR_NOT_ALLOWED: "the site's policy does not allow this coordinator",
@@ -565,6 +570,12 @@ def disclosure_mod(
     ledger: ReleaseLedger | None = None
     request: SiteRequest | None = None
     study_id: str | None = None
+    if msg.metadata.message_type == MessageType.TRAIN:
+        # Weight updates for Flower's strategies pass their own gate (imported here: it
+        # builds on this module, and it needs torch-free Flower records only).
+        from site_agent.update_disclosure import update_disclosure
+
+        return update_disclosure(msg, context, call_next)
     try:
         policy_path = str(context.node_config.get(POLICY_PATH_KEY, ""))
         ledger_path = str(context.node_config.get(LEDGER_PATH_KEY, ""))
@@ -589,12 +600,19 @@ def disclosure_mod(
         if reply.has_error():
             raise _refuse(RefusalCode.SITE_ERROR)
         answered = decode_reply(reply.content)
-        if answered.status is ReplyStatus.DECLINED or answered.release is None:
+        if answered.status is ReplyStatus.DECLINED or (
+            answered.release is None and answered.adaptation is None
+        ):
             raise _refuse(_ERROR_CODES.get(answered.error_class or "", RefusalCode.SITE_ERROR))
+        if answered.adaptation is not None:
+            return _released_adaptation(msg, answered, policy, ledger, request, study_id)
         return _released(msg, answered, policy, ledger, request, study_id)
     except Exception as exc:  # every failure is declined with a fixed reason code only
         code = _code_of(exc)
-        logger.error("site %s declined a request: %s", site, code.value, exc_info=exc)
+        if isinstance(exc, DisclosureRefused):  # the policy working as meant: no traceback
+            logger.warning("site %s refused a request: %s", site, code.value)
+        else:
+            logger.error("site %s declined a request: %s", site, code.value, exc_info=exc)
         return _declined(msg, site, request_id, code, ledger, request, study_id)
 
 
@@ -651,6 +669,39 @@ def _released(
             released=released,
             epsilon_spent=epsilon or 0.0,
         )
+    content[DISCLOSURE_RECORD] = ConfigRecord(
+        {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
+    )
+    return Message(content, reply_to=msg)
+
+
+def _released_adaptation(
+    msg: Message,
+    answered: SiteReply,
+    policy: SitePolicy,
+    ledger: ReleaseLedger,
+    request: SiteRequest,
+    study_id: str,
+) -> Message:
+    """Release a fine_tune reply under the minimum cell size; ledger it (no DP covers it)."""
+    assert answered.adaptation is not None  # checked by the caller
+    if policy.privacy.enabled:
+        raise _refuse(RefusalCode.NOT_COVERED_BY_PRIVACY, request.operation.value)
+    adaptation, suppressed = control_adaptation(answered.adaptation, policy)
+    note = DisclosureNote(
+        min_cell=policy.min_cell, small_cells=policy.small_cells, suppressed=suppressed
+    )
+    out = answered.model_copy(update={"adaptation": adaptation})
+    out = SiteReply.model_validate(out.model_dump())
+    content = encode_reply(out)
+    note_json = note.model_dump_json()
+    entry = ledger.append(
+        outcome=Outcome.RELEASED,
+        study_id=study_id,
+        protocol_hash=request.protocol_hash,
+        operation=request.operation.value,
+        released={"reply": json.loads(out.model_dump_json()), "disclosure": json.loads(note_json)},
+    )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )

@@ -145,9 +145,7 @@ def _subgroups(
     return out
 
 
-def _attribute_counts(
-    predictions: Predictions, attributes: Sequence[str]
-) -> list[AttributeCounts]:
+def _attribute_counts(predictions: Predictions, attributes: Sequence[str]) -> list[AttributeCounts]:
     out = []
     for attribute in attributes:
         levels, counts = np.unique(predictions.attributes[attribute], return_counts=True)

@@ -112,10 +112,14 @@ def local_data(frame: pd.DataFrame, bundle: ModelBundle, plan: AdaptationPlan) -
 
 def get_state(model: torch.nn.Module) -> State:
     """Return a model's weights as float32 numpy arrays (copies), by parameter name."""
-    return {k: v.detach().cpu().numpy().astype(np.float32).copy() for k, v in model.state_dict().items()}
+    return {
+        k: v.detach().cpu().numpy().astype(np.float32).copy() for k, v in model.state_dict().items()
+    }
 
 
-def with_state(bundle: ModelBundle, state: Mapping[str, npt.NDArray[np.floating]]) -> torch.nn.Module:
+def with_state(
+    bundle: ModelBundle, state: Mapping[str, npt.NDArray[np.floating]]
+) -> torch.nn.Module:
     """Return a copy of the bundle's model carrying ``state`` instead of its own weights.
 
     Raises
@@ -131,7 +135,9 @@ def with_state(bundle: ModelBundle, state: Mapping[str, npt.NDArray[np.floating]
         raise InputError("the weights sent do not fit the model bundle's architecture")
     if not all(np.all(np.isfinite(state[k])) for k in expected):
         raise InputError("the weights sent contain non-finite values")
-    model.load_state_dict({k: torch.as_tensor(np.asarray(state[k], dtype=np.float32)) for k in expected})
+    model.load_state_dict(
+        {k: torch.as_tensor(np.asarray(state[k], dtype=np.float32)) for k in expected}
+    )
     model.eval()
     return model
 
@@ -176,7 +182,10 @@ def fine_tune(
             if pull > 0:
                 # (λ + μ)/2 · ||w − w₀||²: L2-SP (Li et al. 2018) and FedProx (Li et al. 2020)
                 distance = sum(
-                    ((p - p0).pow(2).sum() for p, p0 in zip(model.parameters(), start, strict=True)),
+                    (
+                        (p - p0).pow(2).sum()
+                        for p, p0 in zip(model.parameters(), start, strict=True)
+                    ),
                     torch.zeros(()),
                 )
                 loss = loss + 0.5 * pull * distance

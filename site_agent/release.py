@@ -217,9 +217,7 @@ class SiteRelease(_Record):
     statistics: SufficientStatistics
     exact: ExactEstimates
     subgroups: tuple[SubgroupRelease, ...] = Field(default=(), max_length=MAX_SUBGROUPS)
-    attribute_counts: tuple[AttributeCounts, ...] = Field(
-        default=(), max_length=MAX_MIX_ATTRIBUTES
-    )
+    attribute_counts: tuple[AttributeCounts, ...] = Field(default=(), max_length=MAX_MIX_ATTRIBUTES)
 
     def to_json(self) -> str:
         """Return the release as JSON, exactly as it would leave the site."""

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from site_agent.adaptation_release import AdaptationRelease
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import (
     BundleError,
@@ -44,7 +45,11 @@ UNNAMED_SITE = "unnamed-site"
 
 _UNEXPECTED = "the site agent failed unexpectedly; details are in the site's own log"
 
-SUPPORTED_OPERATIONS: tuple[Operation, ...] = (Operation.EVALUATE, Operation.MONITOR)
+SUPPORTED_OPERATIONS: tuple[Operation, ...] = (
+    Operation.EVALUATE,
+    Operation.MONITOR,
+    Operation.FINE_TUNE,
+)
 
 
 class SiteSettings(BaseModel):
@@ -94,12 +99,26 @@ class SiteSettings(BaseModel):
         return config
 
 
-def answer(request: SiteRequest, bundle: bytes | None, settings: SiteSettings) -> SiteReply:
+def answer(
+    request: SiteRequest,
+    bundle: bytes | None,
+    settings: SiteSettings,
+    weights: Mapping[str, np.ndarray] | None = None,
+) -> SiteReply:
     """Answer one request: verify it, score the site's table if needed, evaluate, release.
 
+    A ``fine_tune`` request is answered by :func:`_fine_tune` instead: fine-tuning on the
+    plan's grid, or, when ``weights`` came with the request, measuring those weights.
     Never raises: any error becomes a ``declined`` reply (see :func:`declined_reply`).
     """
     try:
+        if request.operation is Operation.FINE_TUNE:
+            return SiteReply(
+                site=settings.site,
+                request_id=request.request_id,
+                status=ReplyStatus.RELEASED,
+                adaptation=_fine_tune(request, bundle, settings, weights),
+            )
         release = _evaluate(request, bundle, settings)
     except Exception as exc:  # every failure must become a scrubbed decline
         return declined_reply(settings.site, request.request_id, exc)
@@ -147,6 +166,44 @@ def _evaluate(request: SiteRequest, bundle: bytes | None, settings: SiteSettings
         site=settings.site,
         protocol_hash=request.protocol_hash,
         mix_attributes=mix if request.operation is Operation.MONITOR else (),
+    )
+
+
+def _fine_tune(
+    request: SiteRequest,
+    bundle: bytes | None,
+    settings: SiteSettings,
+    weights: Mapping[str, np.ndarray] | None,
+) -> AdaptationRelease:
+    """Fine-tune on the protocol's grid, or measure the weights sent; test set only."""
+    protocol = _checked_protocol(request)
+    if protocol.model is None or protocol.adaptation is None:
+        raise ProtocolError("fine_tune needs a protocol that names a model and an adaptation plan")
+    if bundle is None:
+        raise BundleError("a fine_tune request came without the model bundle")
+    # Imported here: torch costs seconds to import, and sites with scores never need it.
+    from site_agent.local_training import adapt_site, evaluate_state, local_data
+    from site_agent.model_bundle import load_bundle
+
+    model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
+    data = local_data(read_table(settings.data_path), model, protocol.adaptation)
+    thresholds = protocol.evaluation.thresholds
+    if weights is not None:
+        return evaluate_state(
+            data,
+            model,
+            weights,
+            thresholds,
+            site=settings.site,
+            protocol_hash=request.protocol_hash,
+        )
+    return adapt_site(
+        data,
+        model,
+        protocol.adaptation,
+        thresholds,
+        site=settings.site,
+        protocol_hash=request.protocol_hash,
     )
 
 

@@ -21,6 +21,7 @@ from typing import TypeVar
 from flwr.app import ConfigRecord, RecordDict
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from site_agent.adaptation_release import AdaptationRelease
 from site_agent.exceptions import ProtocolError
 from site_agent.protocol import Operation
 from site_agent.release import SiteRelease
@@ -33,6 +34,8 @@ EVALUATE_MESSAGE_TYPE = f"evaluate.{SITE_ACTION}"
 REQUEST_RECORD = "sitepool.request"
 REPLY_RECORD = "sitepool.reply"
 BUNDLE_RECORD = "sitepool.bundle"
+WEIGHTS_RECORD = "sitepool.weights"
+"""ArrayRecord of model weights sent with a fine_tune request (e.g. a federated model)."""
 _JSON_KEY = "json"
 _BUNDLE_KEY = "bundle"
 
@@ -88,6 +91,9 @@ class SiteReply(_Wire):
     )
     status: ReplyStatus
     release: SiteRelease | None = None
+    adaptation: AdaptationRelease | None = Field(
+        default=None, description="A fine_tune reply's release, instead of ``release``."
+    )
     reason: str | None = Field(default=None, max_length=MAX_REASON_CHARS)
     error_class: str | None = Field(
         default=None, max_length=80, description="Class of the error that caused a decline."
@@ -95,9 +101,10 @@ class SiteReply(_Wire):
 
     @model_validator(mode="after")
     def _status_matches_payload(self) -> SiteReply:
-        if self.status is ReplyStatus.RELEASED and (self.release is None or self.reason):
-            raise ValueError("a released reply carries a release and no reason")
-        if self.status is ReplyStatus.DECLINED and (self.release is not None or not self.reason):
+        payloads = (self.release is not None) + (self.adaptation is not None)
+        if self.status is ReplyStatus.RELEASED and (payloads != 1 or self.reason):
+            raise ValueError("a released reply carries one release and no reason")
+        if self.status is ReplyStatus.DECLINED and (payloads or not self.reason):
             raise ValueError("a declined reply carries a reason and no release")
         return self
 

@@ -119,3 +119,23 @@ def test_missing_subgroup_column_exits_2(tmp_path: Path) -> None:
     result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--protocol", str(path)])
     assert result.exit_code == 2 and result.stdout == ""
     assert "'ward'" in result.stderr
+
+
+def test_policy_option_shows_the_release_after_disclosure_control(tmp_path: Path) -> None:
+    """With --policy, every released histogram and calibration bin is 0 or at least min_cell."""
+    policy = tmp_path / "policy.json"
+    policy.write_text(json.dumps({"min_cell": 5, "small_cells": "merge"}))
+    result = runner.invoke(
+        app, ["site", "evaluate", str(EXAMPLE), "--json", "--policy", str(policy)]
+    )
+    assert result.exit_code == 0, result.stderr
+    release = SiteRelease.from_json(result.stdout)
+    h = release.statistics.histogram
+    assert set(h.edges) <= set(EvaluationPlan().histogram_edges)
+    # The small-cell rule (min_cell 5, common practice): no count from 1 to 4 leaves.
+    assert all(v == 0 or v >= 5 for row in (h.positive, h.negative) for v in row)
+    assert all(v == 0 or v >= 5 for v in release.statistics.calibration.count)
+    unpoliced = SiteRelease.from_json(
+        runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout
+    )
+    assert sum(h.positive) == sum(unpoliced.statistics.histogram.positive)

@@ -1,0 +1,183 @@
+"""A monitoring rehearsal: synthetic sites that drift over time, watched window by window.
+
+The rehearsal builds the scenario's sites with its drift events spliced in
+(:mod:`simulations.drift_events`), develops the model at the development site on a
+patient-grouped training part (that site is then monitored on its held-out cases only),
+blanks the labels of the last ``pending_label_months`` months, lays out each invented
+hospital (cases, a policy that allows monitoring, an approval, a ledger) under
+``out/site-data/<site>/``, registers a monitoring protocol with one window per month,
+and runs it on the chosen engine. Every released window goes into the results store
+``out/monitoring.sqlite``; running the rehearsal again into the same directory resumes
+and stores nothing twice.
+
+Invented data for rehearsal only; sitepool is a research tool, not a medical device.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+
+from coordinator.engines import Engine, run_monitoring
+from coordinator.monitoring import MonitoringOutcome
+from simulations.dataset import FeatureTable, load_public_dataset
+from simulations.development import develop_model
+from simulations.drift_events import build_drifting_sites, event_start, with_pending_labels
+from simulations.scenario import Scenario
+from simulations.sites import development_split
+from site_agent.approvals import approve
+from site_agent.model_bundle import save_bundle
+from site_agent.policy import SitePolicy, SmallCellAction
+from site_agent.protocol import (
+    EvaluationPlan,
+    ModelReference,
+    MonitoringPlan,
+    Operation,
+    StudyProtocol,
+    uniform_edges,
+)
+from site_agent.service import SiteSettings
+
+DRIFT_SCENARIO_FILE = "drift_scenario.toml"
+STORE_FILE = "monitoring.sqlite"
+MIX_ATTRIBUTE = "scanner_vendor"
+HISTOGRAM_BINS = 20
+"""Score bins of each window: fewer than the smallest window's cases (disclosure rule 2)."""
+DEFAULT_BASELINE_WINDOWS = 6
+"""Months of baseline in the rehearsal: half a year before the first event can start."""
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True, slots=True)
+class InjectedEvent:
+    """A drift event as the rehearsal injected it: where, from which window, what."""
+
+    site: str
+    window_number: int
+    description: str
+
+
+@dataclass(frozen=True, slots=True)
+class MonitoredStudy:
+    """What a monitoring rehearsal ran and where its results store is."""
+
+    protocol: StudyProtocol
+    store_path: Path
+    outcome: MonitoringOutcome
+    events: tuple[InjectedEvent, ...]
+    sites: tuple[str, ...]
+
+
+def drift_scenario() -> Scenario:
+    """Return the packaged monitoring scenario (four invented hospitals, 24 months)."""
+    text = resources.files("simulations").joinpath(DRIFT_SCENARIO_FILE).read_text()
+    return Scenario.from_text(text, "toml")
+
+
+def injected_events(scenario: Scenario) -> tuple[InjectedEvent, ...]:
+    """Return the scenario's events with the monthly window in which each begins."""
+    return tuple(
+        InjectedEvent(e.site, e.from_month, e.description or "unnamed change")
+        for e in sorted(scenario.drift_events, key=lambda e: (e.from_month, e.site))
+    )
+
+
+def monitoring_protocol(
+    scenario: Scenario, model: ModelReference, *, baseline_windows: int
+) -> StudyProtocol:
+    """Return the rehearsal's monitoring protocol: one window per scenario month."""
+    return StudyProtocol(
+        study_id=f"drift-rehearsal-{scenario.seed}",
+        title=f"Rehearsal of drift monitoring at {len(scenario.sites)} invented hospitals",
+        model=model,
+        evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(HISTOGRAM_BINS)),
+        operations=(Operation.MONITOR,),
+        rounds=scenario.months,
+        quorum=1,
+        monitoring=MonitoringPlan(
+            first_window_start=scenario.start_date,
+            window_months=1,
+            windows=scenario.months,
+            baseline_windows=baseline_windows,
+            mix_attributes=(MIX_ATTRIBUTE,),
+        ),
+    )
+
+
+def rehearse_drift(
+    scenario: Scenario,
+    out: Path,
+    *,
+    engine: Engine = "inprocess",
+    baseline_windows: int = DEFAULT_BASELINE_WINDOWS,
+    dataset: FeatureTable | None = None,
+    progress: Progress | None = None,
+) -> MonitoredStudy:
+    """Lay out the drifting sites and run every monitoring window into the results store.
+
+    Raises
+    ------
+    InputError
+        If the scenario cannot be built or the monitoring plan is invalid.
+    DeploymentError
+        If the engine fails.
+    """
+    say = progress or (lambda _: None)
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    dataset = dataset if dataset is not None else load_public_dataset()
+    say(f"building {len(scenario.sites)} drifting sites from {dataset.n_cases} public cases")
+    sites = build_drifting_sites(scenario, dataset)
+    development = sites[scenario.development_index]
+    train, held_out = development_split(development, seed=scenario.seed)
+    say(f"developing a logistic model at {development.name} on {len(train)} cases")
+    developed = develop_model(train, "logistic", seed=scenario.seed, site=development.name)
+    bundle_path = out / "model" / "model-bundle.zip"
+    bundle_path.parent.mkdir(parents=True, exist_ok=True)
+    sha256 = save_bundle(developed.model, developed.manifest, bundle_path)
+    model = ModelReference(name=developed.manifest.name, architecture="logistic", sha256=sha256)
+    protocol = monitoring_protocol(scenario, model, baseline_windows=baseline_windows)
+    policy = SitePolicy(
+        small_cells=SmallCellAction.MERGE,
+        allowed_operations=(Operation.MONITOR,),
+        allowed_subgroup_attributes=(MIX_ATTRIBUTE,),
+    )
+    settings = []
+    for site in sites:
+        home = out / "site-data" / site.spec.slug
+        home.mkdir(parents=True, exist_ok=True)
+        table = held_out if site is development else site.table
+        with_pending_labels(table, scenario).to_csv(home / "cases.csv", index=False)
+        (home / "policy.json").write_text(policy.model_dump_json(indent=2))
+        approve(protocol, home / policy.approvals_file)
+        settings.append(
+            SiteSettings(
+                site=site.name,
+                data_path=home / "cases.csv",
+                policy_path=home / "policy.json",
+                ledger_path=home / "ledger.jsonl",
+            )
+        )
+    for event in scenario.drift_events:
+        say(f"injected: {event.site} from {event_start(scenario, event).date()}")
+    say(f"running {scenario.months} monthly windows on the {engine} engine")
+    store_path = out / STORE_FILE
+    outcome = run_monitoring(
+        protocol,
+        bundle_path,
+        settings,
+        store_path=store_path,
+        engine=engine,
+        workdir=out / "run",
+        progress=say,
+    )
+    return MonitoredStudy(
+        protocol=protocol,
+        store_path=store_path,
+        outcome=outcome,
+        events=injected_events(scenario),
+        sites=tuple(s.name for s in sites),
+    )
