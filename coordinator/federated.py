@@ -31,7 +31,7 @@ from __future__ import annotations
 import hashlib
 import time
 import uuid
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import numpy as np
@@ -71,6 +71,9 @@ class FederatedRun(_Record):
     strategy: str
     rounds: list[FederatedRound]
     final_weights_sha256: str
+    final_weights: dict[str, list[float]] = Field(
+        default_factory=dict, description="The federated model's weights, flattened, by name."
+    )
     update_noise: bool = False
     evaluation: AdaptationRound | None = None
 
@@ -187,9 +190,17 @@ def build_strategy(protocol: StudyProtocol) -> QuorumFedAvg | QuorumFedProx:
 
 
 def run_federated(
-    grid: Grid, protocol: StudyProtocol, bundle: bytes, *, evaluate: bool = True
+    grid: Grid,
+    protocol: StudyProtocol,
+    bundle: bytes,
+    *,
+    evaluate: bool = True,
+    evaluate_fn: Callable[[int, ArrayRecord], MetricRecord | None] | None = None,
 ) -> FederatedRun:
     """Run federated fine-tuning as the protocol's plan says; measure the result at the sites.
+
+    ``evaluate_fn`` is handed to the strategy (called with each round's global weights);
+    benchmarks use it in simulation, where the coordinator may see test data.
 
     Raises
     ------
@@ -220,6 +231,7 @@ def run_federated(
             timeout=protocol.reply_timeout_s,
             train_config=train_config(request, bundle),
             evaluate_config=ConfigRecord(),
+            evaluate_fn=evaluate_fn,
         )
         final = state_of(result.arrays)
     evaluation = request_adaptation(grid, protocol, bundle, weights=final) if evaluate else None
@@ -227,6 +239,7 @@ def run_federated(
         strategy=plan.strategy.value,
         rounds=list(strategy.records),
         final_weights_sha256=state_sha256(final),
+        final_weights={k: [float(x) for x in v.ravel()] for k, v in final.items()},
         update_noise=plan.update_noise is not None,
         evaluation=evaluation,
     )

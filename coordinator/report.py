@@ -17,6 +17,7 @@ from pathlib import Path
 
 from coordinator import report_plots as plots
 from coordinator.exports import find_metric, headline_auc, prevalence
+from coordinator.report_adaptation import adaptation_section
 from coordinator.study_results import CurvePoints, MetaRow, MetricRow, StudyResults
 
 POOLED = plots.POOLED_SITE
@@ -120,6 +121,9 @@ def report_html(results: StudyResults) -> str:
         ("stard", "STARD 2015 items covered", _stard_section()),
         ("notes", "Notes", _notes_section(results)),
     ]
+    if results.adaptation or results.reference_lines:
+        adaptation = ("adaptation", "Local adaptation and reference lines")
+        sections.insert(-2, (*adaptation, adaptation_section(results)))
     nav = "".join(f'<li><a href="#{sid}">{_e(title)}</a></li>' for sid, title, _ in sections)
     body = "".join(
         f'<section id="{sid}"><h2>{_e(title)}</h2>{content}</section>'

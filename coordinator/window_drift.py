@@ -87,6 +87,10 @@ SPECIFICITY = "specificity"
 AUC = "auc"
 LABEL_METRICS = (SENSITIVITY, SPECIFICITY, AUC)
 """Metric names of the label-based charts, in report order."""
+PSI_BAND_SHARE = 0.1
+"""PSI is taken over score bands holding at least this share of the baseline each (about
+ten bands, as scorecards use deciles; Siddiqi 2006, common practice), so that sparse bins
+and their floored shares do not dominate it. KS uses every common bin."""
 
 
 def mix_metric(attribute: str) -> str:
@@ -457,7 +461,12 @@ def _label_free_row(
         notes.append("the window and the baseline share fewer than two score bins")
     else:
         ref, cur = base_hist.coarsened(edges).all, current.coarsened(edges).all
-        psi = population_stability_index(ref, cur, thresholds=settings.psi_thresholds)
+        bands = _bands(ref, PSI_BAND_SHARE)
+        psi = population_stability_index(
+            [sum(ref[a:b]) for a, b in bands],
+            [sum(cur[a:b]) for a, b in bands],
+            thresholds=settings.psi_thresholds,
+        )
         ks = binned_ks(ref, cur, thresholds=settings.p_thresholds)
         row.update(
             psi=_finite(psi.psi),
@@ -481,6 +490,30 @@ def _label_free_row(
             notes.append("some expected attribute counts are below 5: chi-square is rough")
     row["notes"] = notes
     return row
+
+
+def _bands(reference: tuple[int, ...], share: float) -> list[tuple[int, int]]:
+    """Group adjacent bins, left to right, until each group holds ``share`` of the reference.
+
+    A last group short of ``share`` joins the one before it. At least two groups are kept
+    when the reference has two non-empty bins.
+    """
+    total = sum(reference)
+    groups: list[tuple[int, int]] = []
+    start, running = 0, 0
+    for end, count in enumerate(reference, start=1):
+        running += count
+        if total and running >= share * total:
+            groups.append((start, end))
+            start, running = end, 0
+    if start < len(reference):
+        if groups and running < share * total:
+            groups[-1] = (groups[-1][0], len(reference))
+        else:
+            groups.append((start, len(reference)))
+    if len(groups) < 2:
+        return [(i, i + 1) for i in range(len(reference))]
+    return groups
 
 
 def _charts(

@@ -16,6 +16,7 @@ import typer
 from rich.console import Console
 
 from coordinator.cli import add_meta_command
+from simulations.monitor_cli import add_monitor_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
@@ -32,6 +33,7 @@ app = typer.Typer(
 )
 app.add_typer(site_app)
 add_meta_command(app)
+add_monitor_command(app)
 
 
 @app.command(
@@ -59,6 +61,16 @@ def rehearse_command(
     architecture: Annotated[
         str, typer.Option("--model", help="Model architecture: logistic or mlp.")
     ] = "logistic",
+    adapt: Annotated[
+        bool,
+        typer.Option(
+            "--adapt/--no-adapt",
+            help=(
+                "Also fine-tune at each site on 0, 10, 25, 50, 100 and all local cases, "
+                "run federated fine-tuning, and draw the four reference lines."
+            ),
+        ),
+    ] = False,
 ) -> None:
     """Run a rehearsal and say where its report is."""
     from simulations.rehearsal import rehearse
@@ -95,6 +107,7 @@ def rehearse_command(
             engine=engine,  # type: ignore[arg-type]
             architecture=architecture,
             progress=progress,
+            adapt=adapt,
         )
     except SitepoolError as exc:
         _fail(str(exc))

@@ -15,10 +15,13 @@ Invented data for rehearsal only; sitepool is a research tool, not a medical dev
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
+
+import numpy as np
 
 from coordinator.engines import Engine, run_monitoring
 from coordinator.monitoring import MonitoringOutcome
@@ -36,15 +39,20 @@ from site_agent.protocol import (
     MonitoringPlan,
     Operation,
     StudyProtocol,
-    uniform_edges,
 )
 from site_agent.service import SiteSettings
 
 DRIFT_SCENARIO_FILE = "drift_scenario.toml"
 STORE_FILE = "monitoring.sqlite"
 MIX_ATTRIBUTE = "scanner_vendor"
-HISTOGRAM_BINS = 20
-"""Score bins of each window: fewer than the smallest window's cases (disclosure rule 2)."""
+HISTOGRAM_EDGES: tuple[float, ...] = (
+    0.0,
+    *(round(1.0 / (1.0 + math.exp(-x)), 6) for x in np.linspace(-4.5, 4.5, 7)),
+    1.0,
+)
+"""Score bins of each window, evenly spaced on the logit scale (a confident model puts most
+scores near 0 and 1). Eight coarse bins: a site suppresses small cells of the positive,
+negative and pending rows, and coarse bins keep that from reshaping the label-free row."""
 DEFAULT_BASELINE_WINDOWS = 6
 """Months of baseline in the rehearsal: half a year before the first event can start."""
 
@@ -93,7 +101,7 @@ def monitoring_protocol(
         study_id=f"drift-rehearsal-{scenario.seed}",
         title=f"Rehearsal of drift monitoring at {len(scenario.sites)} invented hospitals",
         model=model,
-        evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(HISTOGRAM_BINS)),
+        evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES),
         operations=(Operation.MONITOR,),
         rounds=scenario.months,
         quorum=1,
@@ -104,6 +112,20 @@ def monitoring_protocol(
             baseline_windows=baseline_windows,
             mix_attributes=(MIX_ATTRIBUTE,),
         ),
+    )
+
+
+def monitoring_policy() -> SitePolicy:
+    """Return each rehearsal site's policy: monitoring allowed, small cells suppressed.
+
+    Suppression keeps every window on the protocol's bin edges, so windows stay
+    comparable bin by bin; merging would make each window's edges differ and leave few
+    edges common to a window and its baseline.
+    """
+    return SitePolicy(
+        small_cells=SmallCellAction.SUPPRESS,
+        allowed_operations=(Operation.MONITOR,),
+        allowed_subgroup_attributes=(MIX_ATTRIBUTE,),
     )
 
 
@@ -140,11 +162,7 @@ def rehearse_drift(
     sha256 = save_bundle(developed.model, developed.manifest, bundle_path)
     model = ModelReference(name=developed.manifest.name, architecture="logistic", sha256=sha256)
     protocol = monitoring_protocol(scenario, model, baseline_windows=baseline_windows)
-    policy = SitePolicy(
-        small_cells=SmallCellAction.MERGE,
-        allowed_operations=(Operation.MONITOR,),
-        allowed_subgroup_attributes=(MIX_ATTRIBUTE,),
-    )
+    policy = monitoring_policy()
     settings = []
     for site in sites:
         home = out / "site-data" / site.spec.slug

@@ -22,10 +22,14 @@ import numpy as np
 import pandas as pd
 import torch
 
+from coordinator.fine_tuning import FineTuningOutcome, add_fine_tuning
+from coordinator.study_results import StudyResults
+from site_agent.exceptions import ProtocolError
 from site_agent.local_training import LocalData, fine_tune, local_data, performance
 from site_agent.model_bundle import load_bundle
 from site_agent.protocol import StudyProtocol
 from site_agent.release import AucRecord
+from site_agent.service import SiteSettings
 
 
 def pooled_pools(datas: Mapping[str, LocalData]) -> LocalData:
@@ -56,8 +60,6 @@ def centralized_reference(
     site_agent.exceptions.ProtocolError
         If the protocol has no adaptation plan or names no model.
     """
-    from site_agent.exceptions import ProtocolError
-
     plan = protocol.adaptation
     if plan is None or protocol.model is None:
         raise ProtocolError("the centralized reference needs a model and an adaptation plan")
@@ -73,3 +75,19 @@ def centralized_reference(
     )
     thresholds = protocol.evaluation.thresholds
     return {site: performance(model, data, thresholds).auc for site, data in datas.items()}
+
+
+def with_reference_lines(
+    results: StudyResults,
+    protocol: StudyProtocol,
+    outcome: FineTuningOutcome,
+    bundle_path: Path,
+    sites: list[SiteSettings],
+) -> StudyResults:
+    """Return ``results`` with the fine-tuning stage and all four reference lines added.
+
+    Reads each site's table where its site agent reads it; simulation only.
+    """
+    tables = {s.site: pd.read_csv(s.data_path) for s in sites if s.site in outcome.local.releases}
+    centralized = centralized_reference(tables, bundle_path, protocol)
+    return add_fine_tuning(results, protocol, outcome, centralized=centralized)

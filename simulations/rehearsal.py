@@ -31,12 +31,20 @@ from coordinator.report import render_report
 from coordinator.study_results import StudyResults
 from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
+from simulations.references import with_reference_lines
 from simulations.scenario import Scenario
 from simulations.sites import SyntheticSite, build_sites, development_split
 from site_agent.approvals import approve
 from site_agent.model_bundle import save_bundle
 from site_agent.policy import SitePolicy, SmallCellAction
-from site_agent.protocol import EvaluationPlan, ModelReference, StudyProtocol, uniform_edges
+from site_agent.protocol import (
+    AdaptationPlan,
+    EvaluationPlan,
+    ModelReference,
+    Operation,
+    StudyProtocol,
+    uniform_edges,
+)
 from site_agent.service import SiteSettings
 
 RESULTS_FILE = "results.json"
@@ -79,6 +87,7 @@ def prepare_study(
     dataset: FeatureTable | None = None,
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
+    adapt: bool = False,
 ) -> PreparedStudy:
     """Build the sites, develop and bundle the model, register the protocol, lay out sites.
 
@@ -108,6 +117,8 @@ def prepare_study(
             subgroups=DEFAULT_SUBGROUPS,
         ),
         quorum=max(2, len(sites) // 2),
+        operations=(Operation.EVALUATE, Operation.FINE_TUNE) if adapt else (Operation.EVALUATE,),
+        adaptation=AdaptationPlan() if adapt else None,
     )
     settings = _prepare_sites(
         sites, development, held_out, protocol, out / "site-data", set(unapproved)
@@ -124,6 +135,7 @@ def rehearse(
     dataset: FeatureTable | None = None,
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
+    adapt: bool = False,
 ) -> RehearsalOutput:
     """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
 
@@ -149,6 +161,7 @@ def rehearse(
         dataset=dataset,
         unapproved=unapproved,
         progress=say,
+        adapt=adapt,
     )
     protocol, bundle_path, settings, sites = (
         study.protocol,
@@ -173,6 +186,11 @@ def rehearse(
     results = build_results(
         protocol, outcome.rounds[-1], engine=engine, sites=info, notes=_notes(sites)
     )
+    if outcome.fine_tuning is not None:
+        say("adding the adaptation curves and the four reference lines")
+        results = with_reference_lines(
+            results, protocol, outcome.fine_tuning, bundle_path, settings
+        )
     results_path = out / RESULTS_FILE
     results.write_json(results_path)
     exports = tuple(write_exports(results, out))
@@ -202,7 +220,9 @@ def _prepare_sites(
     """
     settings = []
     policy = SitePolicy(
-        small_cells=SmallCellAction.MERGE, allowed_subgroup_attributes=DEFAULT_SUBGROUPS
+        small_cells=SmallCellAction.MERGE,
+        allowed_subgroup_attributes=DEFAULT_SUBGROUPS,
+        allowed_operations=protocol.operations,
     )
     for site in sites:
         home = directory / site.spec.slug

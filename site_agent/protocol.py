@@ -146,14 +146,14 @@ class AdaptationPlan(_Frozen):
     repeats: int = Field(default=5, ge=1, le=50, description="Seeds per case count.")
     seed: int = Field(default=0, ge=0, description="Seeds the split; repeat r uses seed + r.")
     test_fraction: float = Field(default=0.4, gt=0.0, lt=1.0)
-    epochs: int = Field(default=60, ge=1, le=10_000, description="Full-batch steps.")
-    learning_rate: float = Field(default=0.05, gt=0.0, le=10.0)
-    l2_to_initial: float = Field(default=0.01, ge=0.0, description="Pull to start weights.")
+    epochs: int = Field(default=100, ge=1, le=10_000, description="Full-batch steps.")
+    learning_rate: float = Field(default=0.01, gt=0.0, le=10.0)
+    l2_to_initial: float = Field(default=1.0, ge=0.0, description="Pull to start weights.")
     margin: float = Field(
         default=0.02, ge=0.0, lt=1.0, description="AUC margin to the development site."
     )
     federated_rounds: int = Field(default=10, ge=0, le=1000)
-    local_epochs: int = Field(default=6, ge=1, le=10_000, description="Steps per round.")
+    local_epochs: int = Field(default=10, ge=1, le=10_000, description="Steps per round.")
     strategy: FederatedStrategy = FederatedStrategy.FEDAVG
     proximal_mu: float = Field(default=0.1, ge=0.0, description="FedProx only.")
     update_noise: UpdateNoise | None = None

@@ -103,7 +103,7 @@ class SiteReply(_Wire):
     def _status_matches_payload(self) -> SiteReply:
         payloads = (self.release is not None) + (self.adaptation is not None)
         if self.status is ReplyStatus.RELEASED and (payloads != 1 or self.reason):
-            raise ValueError("a released reply carries one release and no reason")
+            raise ValueError("a released reply carries a release (one kind only) and no reason")
         if self.status is ReplyStatus.DECLINED and (payloads or not self.reason):
             raise ValueError("a declined reply carries a reason and no release")
         return self

@@ -284,10 +284,13 @@ def test_repeated_queries_are_refused_once_the_privacy_budget_is_spent(tmp_path:
 
     replies = _ask(site, protocol, times=4)
 
+    # The first two requests each spend ε = 0.5: released, or declined when a rule fires on
+    # the noisy counts (that decision is itself a DP output and is charged too).
     statuses = [decode_reply(r.content).status for r in replies]
-    assert statuses == [ReplyStatus.RELEASED] * 2 + [ReplyStatus.DECLINED] * 2
+    assert statuses[2:] == [ReplyStatus.DECLINED] * 2
     _declined_with(replies[2], RefusalCode.PRIVACY_BUDGET_EXHAUSTED)
     entries = site.entries()
+    assert [float(str(e["epsilon_spent"])) for e in entries] == [0.5, 0.5, 0.0, 0.0]
     # Sequential composition (Dwork & Roth 2014, Thm. 3.16): spent epsilons add up.
     assert sum(float(str(e["epsilon_spent"])) for e in entries) == pytest.approx(1.0)
     assert [e["reason"] for e in entries[2:]] == ["privacy_budget_exhausted"] * 2

@@ -1,0 +1,153 @@
+"""The monitoring rehearsal and ``sitepool monitor``, end to end on the in-process engine.
+
+Invented hospitals drawn from the public Wisconsin breast cancer data (scikit-learn), for
+tests only. One rehearsal (seeded) is shared by the tests of this module.
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+from collections.abc import Iterator
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
+from typing import ClassVar
+
+import pytest
+from typer.testing import CliRunner
+
+from coordinator.results_store import SqliteResultsStore
+from coordinator.window_drift import DriftFindings, DriftSettings, analyse_windows
+from simulations.cli import app
+from simulations.drift_rehearsal import MonitoredStudy, drift_scenario, rehearse_drift
+from simulations.scenario import Scenario
+from site_agent.notices import RESEARCH_NOTICE
+
+SCANNER_SITE = "Kestrel Valley Hospital"
+STABLE_SITES = ("Northgate General", "Riverside Clinic")
+EVENT_WINDOW = 7
+DETECTION_WINDOWS = 2
+"""The scanner change must alarm within this many windows of its first month."""
+LABEL_FREE = ("score_distribution", "scanner_vendor_mix")
+
+
+def small_drift_scenario() -> Scenario:
+    """Three of the packaged drift scenario's hospitals over 12 months; one changes scanner."""
+    base = drift_scenario()
+    sizes = {"Northgate General": 4000, "Riverside Clinic": 1500, SCANNER_SITE: 1500}
+    sites = tuple(
+        s.model_copy(update={"n_cases": sizes[s.name]}) for s in base.sites if s.name in sizes
+    )
+    events = tuple(e for e in base.drift_events if e.site == SCANNER_SITE)
+    return base.model_copy(update={"months": 12, "sites": sites, "drift_events": events})
+
+
+@pytest.fixture(scope="module")
+def rehearsal(tmp_path_factory: pytest.TempPathFactory) -> tuple[MonitoredStudy, DriftFindings]:
+    """Run the small rehearsal once and analyse its store."""
+    out = tmp_path_factory.mktemp("drift-rehearsal")
+    study = rehearse_drift(small_drift_scenario(), out, baseline_windows=6)
+    with SqliteResultsStore(study.store_path) as store:
+        records = store.windows(study.protocol.study_id)
+    return study, analyse_windows(
+        study.protocol.study_id, records, DriftSettings(baseline_windows=6)
+    )
+
+
+def test_scanner_change_alarms_at_its_site_within_two_windows(
+    rehearsal: tuple[MonitoredStudy, DriftFindings],
+) -> None:
+    """The site that changed scanner in month 7 alarms on score and vendor mix by month 8."""
+    _, findings = rehearsal
+    first = findings.first_alarms()
+
+    for metric in LABEL_FREE:
+        alarm = first[(SCANNER_SITE, metric)]
+        assert EVENT_WINDOW <= alarm.window_number < EVENT_WINDOW + DETECTION_WINDOWS
+
+
+def test_stable_sites_raise_no_label_free_alarm(
+    rehearsal: tuple[MonitoredStudy, DriftFindings],
+) -> None:
+    """Hospitals without an injected change stay quiet on score distribution and vendor mix."""
+    _, findings = rehearsal
+
+    noisy = [a for a in findings.alarms if a.site in STABLE_SITES and a.metric in LABEL_FREE]
+
+    assert noisy == []
+
+
+def test_pending_months_show_as_incomplete_labels(
+    rehearsal: tuple[MonitoredStudy, DriftFindings],
+) -> None:
+    """The scenario's last two months have no known label; earlier months are complete."""
+    _, findings = rehearsal
+
+    for site in findings.sites:
+        completeness = [w.label_completeness for w in site.windows]
+        assert completeness[:10] == [1.0] * 10
+        assert completeness[10:] == [0.0, 0.0]
+
+
+class _Receiver(BaseHTTPRequestHandler):
+    bodies: ClassVar[list[bytes]] = []
+
+    def do_POST(self) -> None:
+        length = int(self.headers["content-length"])
+        type(self).bodies.append(self.rfile.read(length))
+        self.send_response(204)
+        self.end_headers()
+
+    def log_message(self, format: str, *args: object) -> None:
+        """Keep the test output quiet."""
+
+
+@pytest.fixture
+def receiver() -> Iterator[tuple[str, list[bytes]]]:
+    """Run a real HTTP receiver on 127.0.0.1 for the test; stop it afterwards."""
+    _Receiver.bodies = []
+    server = ThreadingHTTPServer(("127.0.0.1", 0), _Receiver)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    try:
+        yield f"http://127.0.0.1:{server.server_address[1]}/alerts", _Receiver.bodies
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join()
+
+
+def test_monitor_command_writes_the_report_and_posts_alarms(
+    rehearsal: tuple[MonitoredStudy, DriftFindings],
+    receiver: tuple[str, list[bytes]],
+    tmp_path: Path,
+) -> None:
+    """`sitepool monitor --store` writes the drift report and posts each alarm's onset."""
+    study, findings = rehearsal
+    url, bodies = receiver
+
+    result = CliRunner().invoke(
+        app,
+        [
+            "monitor", "--out", str(tmp_path), "--store", str(study.store_path),
+            "--study", study.protocol.study_id, "--webhook", url,
+        ],
+    )  # fmt: skip
+
+    assert result.exit_code == 0, result.output
+    page = (tmp_path / "drift-report.html").read_text()
+    assert page.count(RESEARCH_NOTICE) == 2
+    assert page.index('id="alarm-summary"') < page.index('id="label-completeness"')
+    assert (tmp_path / "drift-windows.csv").read_text().count("\n") == 1 + 3 * 12
+    alerts = [json.loads(body) for body in bodies]
+    posted = {(a["site"], a["metric"], a["method"]) for a in alerts}
+    assert posted == {(a.site, a.metric, a.method) for a in findings.alarms}
+    assert all(a["notice"] == RESEARCH_NOTICE for a in alerts)
+
+
+def test_monitor_command_needs_a_store_or_a_rehearsal(tmp_path: Path) -> None:
+    """Without --store or --rehearse the command fails with a one-line reason."""
+    result = CliRunner().invoke(app, ["monitor", "--out", str(tmp_path)])
+
+    assert result.exit_code == 2
+    assert "either --rehearse or --store" in result.output
