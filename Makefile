@@ -35,6 +35,8 @@ test: lint typecheck unit
 
 bench: venv
 	$(BIN)/python -m simulations.benchmark_rounds
+	$(BIN)/python -m simulations.benchmark_adaptation
+	$(BIN)/python -m simulations.benchmark_drift
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .mypy_cache .pytest_cache .ruff_cache

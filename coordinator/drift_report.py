@@ -3,7 +3,9 @@
 :func:`write_drift_report` writes, into one directory:
 
 - ``drift-report.html``: the research-tool notice at top and bottom; an alarm summary
-  (site × metric → first alarming window); label completeness per site and window; one
+  (site × metric → first alarming window); label completeness per site and window as of
+  the latest monitoring run, with the windows whose release was replaced as labels
+  matured marked and counted; one
   panel per site with its score distribution (baseline against the latest windows), the
   label-free statistics, the attribute mix, the label-based metrics against their targets
   and the CUSUM and EWMA charts; the list of alarms. Figures are inline SVG.
@@ -22,7 +24,7 @@ from pathlib import Path
 
 import matplotlib.pyplot as plt
 
-from coordinator.report_plots import _STYLE, _colour, _svg
+from coordinator.report_plots import STYLE, colour, svg
 from coordinator.window_drift import (
     LABEL_METRICS,
     SCORE_DISTRIBUTION,
@@ -36,9 +38,11 @@ REPORT_FILE = "drift-report.html"
 JSON_FILE = "drift.json"
 WINDOWS_CSV = "drift-windows.csv"
 ALARMS_CSV = "drift-alarms.csv"
+UPDATED_MARK = "u"
+"""Mark beside a window's completeness when its release was replaced as labels matured."""
 _WINDOW_COLUMNS = (
     "window_number", "window_start", "window_end", "baseline", "released", "n_cases",
-    "n_labelled", "n_pending", "label_completeness", "psi", "psi_level", "ks_distance",
+    "n_labelled", "n_pending", "label_completeness", "revisions", "psi", "psi_level", "ks_distance",
     "ks_p_value", "ks_level", "mix_p_value", "mix_level", "tvd", "tvd_level", "sensitivity",
     "sensitivity_trials", "specificity", "specificity_trials", "auc", "auc_se",
 )  # fmt: skip
@@ -138,9 +142,12 @@ def _html(findings: DriftFindings, context: Sequence[str]) -> str:
         for w in site.windows:
             c = w.label_completeness
             text = "–" if c is None else f"{100 * c:.0f}%"
+            if w.revisions:
+                text += f"<sup>{UPDATED_MARK}{w.revisions}</sup>"
             shade = "" if c is None else f' style="background:rgba(44,160,44,{0.15 + 0.6 * c:.2f})"'
             completeness.append(f"<td{shade}>{text}</td>")
         completeness.append("</tr>")
+    updated = sum(1 for site in findings.sites for w in site.windows if w.revisions)
     alarm_rows = [
         f"<tr><td>{e(a.site)}</td><td>{e(_label(a.metric))}</td><td>{e(a.method)}</td>"
         f"<td>{a.window_number} ({a.window_start} to {a.window_end})</td>"
@@ -181,6 +188,9 @@ EWMA (λ {s.ewma_lambda:g}, L {s.ewma_width:g}) charts for a fall below the base
 designs from published ARL tables (Montgomery 2009; Lucas &amp; Saccucci 1990).</small></p>
 <h2>Label completeness (share of released cases with a known label)</h2>
 <table id="label-completeness">{"".join(completeness)}</table>
+<p id="label-updates">{updated} site window(s) were fetched again and updated after their
+labels matured (marked {UPDATED_MARK}<i>n</i>: updated <i>n</i> times); completeness is as
+of the latest monitoring run.</p>
 <p><small>Label-based charts use labelled cases only; pending labels still count in the
 score distribution and the attribute mix. A site withholds pending counts below its
 minimum cell, so completeness can read slightly high.</small></p>
@@ -214,7 +224,7 @@ def _nan(value: float | None) -> float:
 
 def _label_free_svg(findings: DriftFindings, site: SiteDrift) -> str:
     numbers = [w.window_number for w in site.windows]
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, axes = plt.subplots(1, 3, figsize=(11.0, 2.8))
         ax = axes[0]
         if site.baseline_edges is not None and site.baseline_counts is not None:
@@ -234,10 +244,10 @@ def _label_free_svg(findings: DriftFindings, site: SiteDrift) -> str:
         ax.set_ylabel("share of cases")
         ax = axes[1]
         ax.plot(numbers, [_nan(w.psi) for w in site.windows], "o-", label="PSI",
-                color=_colour(0))  # fmt: skip
+                color=colour(0))  # fmt: skip
         ax.plot(numbers, [_nan(w.ks_distance) for w in site.windows], "s-", label="KS distance",
-                color=_colour(1))  # fmt: skip
-        ax.axhline(findings.settings.psi_thresholds[1], color=_colour(0), linestyle=":")
+                color=colour(1))  # fmt: skip
+        ax.axhline(findings.settings.psi_thresholds[1], color=colour(0), linestyle=":")
         ax.axvspan(0.5, findings.settings.baseline_windows + 0.5, color="#ddd", alpha=0.5)
         ax.set_title("score distribution vs baseline")
         ax.set_xlabel("window")
@@ -247,27 +257,27 @@ def _label_free_svg(findings: DriftFindings, site: SiteDrift) -> str:
         bottom = [0.0] * len(numbers)
         for i, level in enumerate(levels):
             shares = [w.mix_shares.get(level, 0.0) for w in site.windows]
-            ax.bar(numbers, shares, bottom=bottom, label=level, color=_colour(i))
+            ax.bar(numbers, shares, bottom=bottom, label=level, color=colour(i))
             bottom = [b + s for b, s in zip(bottom, shares, strict=True)]
         ax.set_title(f"{findings.settings.mix_attribute or 'attribute'} mix")
         ax.set_xlabel("window")
         if levels:
             ax.legend(fontsize=7)
         fig.tight_layout()
-        return _svg(fig)
+        return svg(fig)
 
 
 def _label_based_svg(findings: DriftFindings, site: SiteDrift) -> str:
     numbers = [w.window_number for w in site.windows]
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, axes = plt.subplots(1, 3, figsize=(11.0, 2.8))
         ax = axes[0]
         for i, metric in enumerate(LABEL_METRICS):
             values = [_nan(getattr(w, metric)) for w in site.windows]
-            ax.plot(numbers, values, "o-", color=_colour(i), label=_label(metric), markersize=3)
+            ax.plot(numbers, values, "o-", color=colour(i), label=_label(metric), markersize=3)
             target = site.targets.get(metric)
             if target is not None:
-                ax.axhline(target, color=_colour(i), linestyle=":")
+                ax.axhline(target, color=colour(i), linestyle=":")
         ax.axvspan(0.5, findings.settings.baseline_windows + 0.5, color="#ddd", alpha=0.5)
         ax.set_title("labelled cases: metrics and baseline targets")
         ax.set_xlabel("window")
@@ -280,7 +290,7 @@ def _label_based_svg(findings: DriftFindings, site: SiteDrift) -> str:
                 values = [_nan(w.charts.get(f"{metric}_{method}")) for w in site.windows]
                 if method == "ewma":
                     values = [-v for v in values]  # a fall shows as a rise toward the limit
-                ax.plot(numbers, values, "o-", color=_colour(i), label=_label(metric),
+                ax.plot(numbers, values, "o-", color=colour(i), label=_label(metric),
                         markersize=3)  # fmt: skip
             if limit is not None:
                 ax.axhline(limit, color="#b00", linestyle="--", label="alarm limit")
@@ -288,7 +298,7 @@ def _label_based_svg(findings: DriftFindings, site: SiteDrift) -> str:
             ax.set_xlabel("window")
             ax.legend(fontsize=7)
         fig.tight_layout()
-        return _svg(fig)
+        return svg(fig)
 
 
 def _fmt(value: float | None) -> str:

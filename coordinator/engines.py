@@ -10,6 +10,7 @@ run config, and both hand back what the ServerApp wrote to the results file.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from datetime import date
 from pathlib import Path
 from typing import Literal
 
@@ -78,20 +79,23 @@ def run_monitoring(
     store_path: Path,
     engine: Engine,
     workdir: Path,
+    as_of: date | None = None,
     progress: Callable[[str], None] | None = None,
     timeout_s: float = DEFAULT_RUN_TIMEOUT_S,
 ) -> MonitoringOutcome:
     """Run one monitoring round per window of ``protocol.monitoring`` on the chosen engine.
 
     Each window's releases go into the SQLite results store at ``store_path``; windows
-    already stored there are skipped (see :mod:`coordinator.monitoring`). Other
-    parameters and errors are those of :func:`run_study`.
+    whose stored release is final there are skipped, and windows still awaiting labels
+    are asked again (see :mod:`coordinator.monitoring`). ``as_of`` is the day taken as
+    today for the plan's label horizon (None: today). Other parameters and errors are
+    those of :func:`run_study`.
     """
     if protocol.monitoring is None:
         raise InputError("the protocol has no monitoring plan")
     config = _configured(
         protocol, bundle_path, sites, workdir, store_path=Path(store_path).resolve()
-    )
+    ).model_copy(update={"as_of": as_of})
     _deploy(config, sites, engine=engine, workdir=workdir, progress=progress, timeout_s=timeout_s)
     return RunRecord.read(config.results_path).unwrap_monitoring()
 

@@ -6,12 +6,20 @@ window at a time (operation ``monitor``, the window in the request; round number
 number), and writes every released window into a
 :class:`~coordinator.results_store.ResultsStore` as the JSON the site sent.
 
-Resuming: windows already stored are not asked again. A window is skipped when the store
-holds it for as many sites as there are connected nodes; otherwise only the nodes whose
-site has not stored it are asked (a node's site is learnt from its first reply in the
-run, so in the first round of a run every node is asked and the store ignores a window it
-already holds). A study interrupted after any window therefore resumes where it stopped,
-and re-running it stores nothing twice.
+Labels mature. A site releases a window with the labels it knows at the time; cases still
+awaiting their reference standard are counted as pending and left out of the label-based
+statistics. A stored window is *final* once no label is pending, or once the run's
+``as_of`` date is ``label_horizon_months`` or more after the window's end (labels that
+have not come by then are not waited for). A run asks again, at every site, each window
+that is not final there; the store keeps one current release per window and replaces it
+only by one with at least as many labelled cases (:mod:`coordinator.results_store`).
+
+Resuming: final windows are not asked again. A window is skipped when the store holds a
+final release of it for as many sites as there are connected nodes; otherwise only the
+nodes whose site has no final release are asked (a node's site is learnt from its first
+reply in the run, so until then a node is asked, and the store leaves a window it already
+holds unchanged when the site sends the same release). A study interrupted after any
+window therefore resumes where it stopped, and re-running it stores nothing twice.
 
 Unlike an evaluation round, a monitoring round does not stop at a missed quorum: a site
 that declines a window (too few cases this month, no case at all) leaves a gap in its
@@ -23,15 +31,15 @@ from __future__ import annotations
 import logging
 import uuid
 from collections.abc import Callable
-from datetime import date
+from datetime import UTC, date, datetime
 
 import pandas as pd
 from flwr.app import Message
 from flwr.serverapp import Grid
 from pydantic import BaseModel, ConfigDict, Field
 
-from coordinator.results_store import ResultsStore
-from coordinator.rounds import NodeFault, RoundOutcome, SiteDecline, _sorted_replies
+from coordinator.results_store import ResultsStore, WindowWrite
+from coordinator.rounds import NodeFault, RoundOutcome, SiteDecline, sorted_replies
 from site_agent.exceptions import InputError
 from site_agent.protocol import MonitoringPlan, Operation, StudyProtocol
 from site_agent.wire import EVALUATE_MESSAGE_TYPE, SiteRequest, TimeWindow, encode_request
@@ -51,9 +59,18 @@ class WindowRound(_Record):
     window_number: int = Field(ge=1, description="1-based position of the window.")
     window_start: date
     window_end: date
-    skipped: bool = Field(description="Every site had already stored this window.")
-    stored: list[str] = Field(description="Sites whose release was stored in this round.")
-    already_stored: list[str] = Field(description="Sites that had stored this window before.")
+    skipped: bool = Field(description="Every site had a final release of this window.")
+    stored: list[str] = Field(description="Sites whose first release was stored in this round.")
+    revised: list[str] = Field(
+        default_factory=list, description="Sites whose stored release this round replaced."
+    )
+    already_stored: list[str] = Field(
+        description="Sites whose stored release this round left as it was."
+    )
+    awaiting_labels: list[str] = Field(
+        default_factory=list,
+        description="Sites whose stored release still has pending labels within the horizon.",
+    )
     declines: list[SiteDecline]
     faults: list[NodeFault]
 
@@ -63,7 +80,12 @@ class MonitoringOutcome(_Record):
 
     study_id: str
     protocol_hash: str
+    as_of: date | None = Field(default=None, description="The date the run took as today.")
     windows: list[WindowRound]
+
+    def revised_windows(self) -> int:
+        """Return how many (site, window) releases this run replaced."""
+        return sum(len(w.revised) for w in self.windows)
 
 
 def monitoring_windows(plan: MonitoringPlan) -> list[TimeWindow]:
@@ -78,15 +100,29 @@ def monitoring_windows(plan: MonitoringPlan) -> list[TimeWindow]:
     ]
 
 
+def is_final(pending_cases: int, window_end: date, plan: MonitoringPlan, as_of: date) -> bool:
+    """Return whether a stored window is not to be asked again (see the module docstring)."""
+    if pending_cases == 0:
+        return True
+    horizon = pd.Timestamp(window_end) + pd.DateOffset(months=plan.label_horizon_months)
+    return pd.Timestamp(as_of) >= horizon
+
+
 def run_monitoring_rounds(
     grid: Grid,
     protocol: StudyProtocol,
     bundle: bytes | None,
     store: ResultsStore,
     *,
+    as_of: date | None = None,
     progress: Progress | None = None,
 ) -> MonitoringOutcome:
-    """Run one round per window of ``protocol.monitoring``, storing each released window.
+    """Run one round per window of ``protocol.monitoring`` that is not final in ``store``.
+
+    Parameters
+    ----------
+    as_of
+        The date taken as today for the label horizon; None: today (UTC).
 
     Raises
     ------
@@ -99,40 +135,48 @@ def run_monitoring_rounds(
     if Operation.MONITOR not in protocol.operations:
         raise InputError("the protocol does not include the monitor operation")
     say = progress or (lambda line: logger.info("%s", line))
+    as_of = as_of or datetime.now(UTC).date()
     protocol_hash = protocol.content_hash()
-    stored: dict[tuple[date, date], set[str]] = {}
+    pending: dict[tuple[date, date], dict[str, int]] = {}
     for record in store.windows(protocol.study_id):
-        stored.setdefault((record.window_start, record.window_end), set()).add(record.site)
+        key = (record.window_start, record.window_end)
+        pending.setdefault(key, {})[record.site] = record.pending_cases
     site_of_node: dict[int, str] = {}
     rounds = []
     windows = monitoring_windows(plan)
     for number, window in enumerate(windows, start=1):
-        done = stored.get((window.start, window.end), set())
+        held = pending.setdefault((window.start, window.end), {})
+        final = {site for site, n in held.items() if is_final(n, window.end, plan, as_of)}
         nodes = sorted(grid.get_node_ids())
         label = f"window {number}/{len(windows)} ({window.start} to {window.end})"
-        if nodes and len(done) >= len(nodes):
-            say(f"{label}: already stored for every site, skipped")
-            rounds.append(_skipped(number, window, done))
+        if nodes and len(final) >= len(nodes):
+            say(f"{label}: final for every site, skipped")
+            rounds.append(_skipped(number, window, held))
             continue
-        targets = [n for n in nodes if site_of_node.get(n) not in done]
+        targets = [n for n in nodes if site_of_node.get(n) not in final]
         result = _ask(grid, protocol, protocol_hash, bundle, window, number, targets)
         site_of_node.update({node: site for site, node in result.node_of_site.items()})
-        new: list[str] = []
-        old = sorted(done & set(result.releases))
+        writes: dict[str, WindowWrite] = {}
         for site, release in result.releases.items():
-            inserted = store.put_window(
+            statistics = release.statistics
+            writes[site] = store.put_window(
                 protocol.study_id,
                 site,
                 window.start,
                 window.end,
                 release.model_dump_json(),
                 round_id=number,
+                labelled_cases=statistics.n_positive + statistics.n_negative,
+                pending_cases=statistics.n_pending,
             )
-            (new if inserted else old).append(site)
-        done |= set(result.releases)
-        stored[(window.start, window.end)] = done
+            if writes[site] in (WindowWrite.STORED, WindowWrite.REVISED):
+                held[site] = statistics.n_pending
+        new = sorted(s for s, w in writes.items() if w is WindowWrite.STORED)
+        revised = sorted(s for s, w in writes.items() if w is WindowWrite.REVISED)
+        awaiting = sorted(s for s, n in held.items() if not is_final(n, window.end, plan, as_of))
         say(
-            f"{label}: {len(new)} stored, {len(result.declines)} declined, "
+            f"{label}: {len(new)} stored, {len(revised)} revised, "
+            f"{len(awaiting)} awaiting labels, {len(result.declines)} declined, "
             f"{len(result.faults)} without answer"
         )
         rounds.append(
@@ -141,25 +185,27 @@ def run_monitoring_rounds(
                 window_start=window.start,
                 window_end=window.end,
                 skipped=False,
-                stored=sorted(new),
-                already_stored=sorted(set(old)),
+                stored=new,
+                revised=revised,
+                already_stored=sorted(set(held) - set(new) - set(revised)),
+                awaiting_labels=awaiting,
                 declines=result.declines,
                 faults=result.faults,
             )
         )
     return MonitoringOutcome(
-        study_id=protocol.study_id, protocol_hash=protocol_hash, windows=rounds
+        study_id=protocol.study_id, protocol_hash=protocol_hash, as_of=as_of, windows=rounds
     )
 
 
-def _skipped(number: int, window: TimeWindow, done: set[str]) -> WindowRound:
+def _skipped(number: int, window: TimeWindow, held: dict[str, int]) -> WindowRound:
     return WindowRound(
         window_number=number,
         window_start=window.start,
         window_end=window.end,
         skipped=True,
         stored=[],
-        already_stored=sorted(done),
+        already_stored=sorted(held),
         declines=[],
         faults=[],
     )
@@ -195,4 +241,4 @@ def _ask(
             )
         )
     replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
-    return _sorted_replies(replies, requests, protocol_hash, number)
+    return sorted_replies(replies, requests, protocol_hash, number)

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from functools import reduce
 
+from coordinator.comparisons import compare_score_distributions
 from coordinator.meta_analysis import (
     EffectSizes,
     MetaAnalysis,
@@ -35,6 +36,7 @@ from coordinator.meta_analysis import (
 from coordinator.rounds import RoundOutcome
 from coordinator.study_results import (
     CurvePoints,
+    DistributionTest,
     MetaRow,
     MetricRow,
     ParticipantFlow,
@@ -46,9 +48,9 @@ from site_agent.estimates import two_sided_z
 from site_agent.exceptions import InputError
 from site_agent.metrics import MetricsSummary, ProportionMetrics, summarize
 from site_agent.protocol import StudyProtocol
-from site_agent.release import AucRecord, EstimateRecord, SiteRelease
+from site_agent.release import AucRecord, EstimateRecord, SiteRelease, SubgroupRelease
 from site_agent.roc import hanley_mcneil_se, mixed_histogram_auc
-from site_agent.summaries import SufficientStatistics
+from site_agent.summaries import ScoreHistogram, SufficientStatistics
 
 POOLED = "pooled"
 """Site name of the merged statistics in the results."""
@@ -78,7 +80,16 @@ def merge_statistics(releases: Sequence[SiteRelease]) -> SufficientStatistics:
 
 
 def pooled_auc(releases: Sequence[SiteRelease], confidence: float = 0.95) -> MetricRow:
-    """AUC of all sites' cases as one cohort, with the largest possible binning error.
+    """AUC of all sites' cases as one cohort; see :func:`cohort_auc`."""
+    return cohort_auc([(r.statistics.histogram, r.exact.auc.auc) for r in releases], confidence)
+
+
+def cohort_auc(
+    parts: Sequence[tuple[ScoreHistogram, float | None]], confidence: float = 0.95
+) -> MetricRow:
+    """AUC of several sites' cases as one cohort, with the largest possible binning error.
+
+    ``parts`` holds, per site, its score histogram and its exact AUC (None if withheld).
 
     The cohort AUC is a weighted sum over pairs of sites ``(i, j)`` of the share of
     (positive from ``i``, negative from ``j``) pairs ordered correctly::
@@ -97,18 +108,18 @@ def pooled_auc(releases: Sequence[SiteRelease], confidence: float = 0.95) -> Met
     ----------
     Hanley JA, McNeil BJ (1982). Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
     """
-    hists = [r.statistics.histogram for r in releases]
+    hists = [h for h, _ in parts]
     pos = [sum(h.positive) for h in hists]
     neg = [sum(h.negative) for h in hists]
     big_p, big_n = sum(pos), sum(neg)
     reason = None if big_p and big_n else "the pooled cases lack a class: AUC undefined"
     value = bound = 0.0
-    for i, (hi, ri) in enumerate(zip(hists, releases, strict=True)):
+    for i, (hi, exact_i) in enumerate(parts):
         for j, hj in enumerate(hists):
             if not pos[i] or not neg[j] or reason:
                 continue
             weight = pos[i] * neg[j] / (big_p * big_n)
-            exact = ri.exact.auc.auc if i == j else None
+            exact = exact_i if i == j else None
             if exact is not None:
                 value += weight * exact
                 continue
@@ -175,15 +186,18 @@ def build_results(
         two_by_two += _tables(release.site, release.statistics)
         flow.append(_flow(release.site, release.statistics, info.get(release.site, SiteInfo())))
     meta: list[MetaRow] = []
+    tests: list[DistributionTest] = []
     if releases:
         pooled = merge_statistics(releases)
         summary = summarize(pooled, confidence=confidence)
         summaries[POOLED] = summary
         metrics += [r for r in _summary_rows(POOLED, summary) if r.metric != "auc"]
         metrics.append(pooled_auc(releases, confidence))
+        metrics += _pooled_subgroup_rows(releases, confidence)
         curves += _curves(POOLED, summary)
         two_by_two += _tables(POOLED, pooled)
         meta = _meta_rows(releases, confidence)
+        tests = _distribution_tests(releases)
     outcomes = _outcomes(outcome, info)
     return StudyResults(
         study_id=protocol.study_id,
@@ -197,6 +211,7 @@ def build_results(
         two_by_two=two_by_two,
         flow=flow,
         meta=meta,
+        distribution_tests=tests,
         findings=_findings(outcomes, metrics, meta, info),
         notes=[*notes, pooled_vs_meta_note()],
     )
@@ -399,6 +414,47 @@ def _flow(site: str, s: SufficientStatistics, info: SiteInfo) -> ParticipantFlow
         negatives=s.n_negative,
         resampled=info.resampled,
     )
+
+
+def _pooled_subgroup_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetricRow]:
+    """Subgroups pooled across sites: each level's cases from every site as one cohort."""
+    levels: dict[tuple[str, str], list[SubgroupRelease]] = {}
+    for release in releases:
+        for group in release.subgroups:
+            levels.setdefault((group.attribute, group.level), []).append(group)
+    rows = []
+    for (attribute, level), groups in sorted(levels.items()):
+        label = f"{attribute}={level}"
+        auc = cohort_auc([(g.statistics.histogram, g.auc.auc) for g in groups], confidence)
+        rows.append(auc.model_copy(update={"subgroup": label}))
+        merged = reduce(lambda a, b: a.merge(b), (g.statistics for g in groups))
+        first = summarize(merged, confidence=confidence).thresholds[:1]
+        for t in first:
+            for name in ("sensitivity", "specificity"):
+                p: ProportionMetrics = getattr(t, name)
+                row = _row(POOLED, name, p.wilson, threshold=t.threshold)
+                rows.append(row.model_copy(update={"subgroup": label}))
+    return rows
+
+
+def _distribution_tests(releases: Sequence[SiteRelease]) -> list[DistributionTest]:
+    """Kruskal–Wallis across sites on binned scores: all cases, positives, negatives."""
+    if len(releases) < 2:
+        return []
+    tests = compare_score_distributions([r.statistics.histogram for r in releases])
+    return [
+        DistributionTest(
+            cases=cases,
+            method="kruskal-wallis (binned scores)",
+            statistic=t.statistic,
+            df=t.df,
+            p_value=t.p_value,
+            n=t.n,
+            sites=t.groups,
+            reason=t.reason,
+        )
+        for cases, t in tests.items()
+    ]
 
 
 def _meta_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetaRow]:

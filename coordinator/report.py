@@ -659,12 +659,47 @@ def _heterogeneity_section(results: StudyResults) -> str:
         rows,
         text_columns=(0, 2, 10, 11),
     )
-    return table + (
-        '<p class="small">τ²: between-site variance on the pooling scale. I²: share of the '
-        "spread in site estimates beyond chance; read as low, moderate or high near 25%, 50% "
-        "and 75% (Higgins et al., BMJ 2003;327:557). H²: Q divided by its degrees of "
-        "freedom. Q and p: Cochran's test of equal accuracy at all sites, which has little "
-        "power with few sites. HKSJ: Hartung–Knapp–Sidik–Jonkman interval.</p>"
+    return (
+        table
+        + (
+            '<p class="small">τ²: between-site variance on the pooling scale. I²: share of '
+            "the spread in site estimates beyond chance; read as low, moderate or high near "
+            "25%, 50% and 75% (Higgins et al., BMJ 2003;327:557). H²: Q divided by its "
+            "degrees of freedom. Q and p: Cochran's test of equal accuracy at all sites, "
+            "which has little power with few sites. HKSJ: Hartung–Knapp–Sidik–Jonkman "
+            "interval.</p>"
+        )
+        + _distribution_tests_table(results)
+    )
+
+
+def _distribution_tests_table(results: StudyResults) -> str:
+    """Kruskal–Wallis across sites on the released (binned) score distributions."""
+    if not results.distribution_tests:
+        return ""
+    rows = [
+        [
+            _e(t.cases),
+            str(t.sites),
+            str(t.n),
+            f"{t.statistic:.2f}" if math.isfinite(t.statistic) else DASH,
+            str(t.df),
+            _pvalue(t.p_value),
+            _e(t.reason or ""),
+        ]
+        for t in results.distribution_tests
+    ]
+    return _table(
+        "table-score-distributions",
+        "Do the model's scores follow one distribution at every site? (Kruskal–Wallis)",
+        ["Cases", "Sites", "n", "H", "df", "p", "Note"],
+        rows,
+        text_columns=(0, 6),
+    ) + (
+        '<p class="small">Kruskal–Wallis test (Kruskal & Wallis 1952) on the binned scores '
+        "the sites released, tie-corrected; bins hide differences inside a bin. All cases: "
+        "acquisition and population differences together; positives and negatives: "
+        "differences that disease prevalence alone cannot explain.</p>"
     )
 
 

@@ -16,7 +16,7 @@ import math
 import matplotlib.pyplot as plt
 
 from coordinator.adaptation import POOLED, count_label
-from coordinator.report_plots import _colour, _svg
+from coordinator.report_plots import colour, svg
 from coordinator.study_results import AdaptationRow, StudyResults
 
 _LINE_LABELS = {
@@ -59,7 +59,7 @@ def adaptation_curves_svg(results: StudyResults) -> str:
         y = [r.estimate for r in curve]
         low = [r.estimate - r.lower if math.isfinite(r.lower) else 0.0 for r in curve]
         high = [r.upper - r.estimate if math.isfinite(r.upper) else 0.0 for r in curve]
-        ax.errorbar(x, y, yerr=[low, high], marker="o", capsize=3, color=_colour(i))
+        ax.errorbar(x, y, yerr=[low, high], marker="o", capsize=3, color=colour(i))
         if margin is not None and math.isfinite(margin.reference_auc):
             ax.axhline(margin.reference_auc - margin.margin, linestyle="--", color="#555555")
         ax.set_xticks(x, labels)
@@ -69,7 +69,7 @@ def adaptation_curves_svg(results: StudyResults) -> str:
     for ax in flat[len(sites) :]:
         ax.set_visible(False)
     fig.tight_layout()
-    return _svg(fig)
+    return svg(fig)
 
 
 def reference_lines_svg(results: StudyResults) -> str:
@@ -93,7 +93,7 @@ def reference_lines_svg(results: StudyResults) -> str:
             xerr=[lows, highs],
             fmt="o",
             capsize=2,
-            color=_colour(j),
+            color=colour(j),
             label=_LINE_LABELS[line],
         )
     ax.set_yticks([i * 5 + 1.5 for i in range(len(sites))], sites, fontsize=8)
@@ -101,7 +101,7 @@ def reference_lines_svg(results: StudyResults) -> str:
     ax.set_xlabel("AUC on the site's held-out local test set (95% CI)")
     ax.legend(fontsize=7, loc="lower left")
     fig.tight_layout()
-    return _svg(fig)
+    return svg(fig)
 
 
 def adaptation_section(results: StudyResults) -> str:

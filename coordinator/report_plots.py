@@ -29,7 +29,7 @@ from coordinator.study_results import CurvePoints, MetaRow
 POOLED_SITE = "pooled"
 """Site name that marks statistics computed on all released sites merged as one cohort."""
 
-_STYLE: dict[Any, Any] = {  # rc keys are typed as literals in matplotlib's stubs
+STYLE: dict[Any, Any] = {  # rc keys are typed as literals in matplotlib's stubs
     "font.family": "sans-serif",
     "font.size": 9.0,
     "axes.titlesize": 10.0,
@@ -38,6 +38,7 @@ _STYLE: dict[Any, Any] = {  # rc keys are typed as literals in matplotlib's stub
     "svg.fonttype": "none",
     "svg.hashsalt": "sitepool",
 }
+"""matplotlib rc settings of every report figure (study and drift reports)."""
 _PALETTE = ("#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#17becf", "#8c564b")
 _POOLED_COLOUR = "#222222"
 _ID_COUNTER = itertools.count(1)
@@ -53,7 +54,7 @@ class ForestSite:
     upper: float
 
 
-def _svg(fig: Figure) -> str:
+def svg(fig: Figure) -> str:
     """Return the figure as one ``<svg>`` element with ids unique on the page."""
     buffer = io.StringIO()
     fig.savefig(buffer, format="svg", bbox_inches="tight")
@@ -68,7 +69,8 @@ def _svg(fig: Figure) -> str:
     return text.strip()
 
 
-def _colour(index: int) -> str:
+def colour(index: int) -> str:
+    """Return the palette colour of the ``index``-th series (the palette repeats)."""
     return _PALETTE[index % len(_PALETTE)]
 
 
@@ -108,15 +110,15 @@ def forest_svg(
     extra = ["Pooled" if meta.method == "fixed" else "Random-effects pooled", "Prediction interval"]
     if cohort is not None:
         extra.append(cohort.label)
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, ax = plt.subplots(figsize=(7.0, 0.42 * (rows + len(extra)) + 1.1))
         for i, site in enumerate(sites):
             y = -i
             if _finite(site.estimate, site.lower, site.upper):
-                ax.plot([site.lower, site.upper], [y, y], color=_colour(i), linewidth=1.6)
-                ax.plot(site.estimate, y, "s", color=_colour(i), markersize=6)
+                ax.plot([site.lower, site.upper], [y, y], color=colour(i), linewidth=1.6)
+                ax.plot(site.estimate, y, "s", color=colour(i), markersize=6)
             elif math.isfinite(site.estimate):
-                ax.plot(site.estimate, y, "s", color=_colour(i), markersize=6)
+                ax.plot(site.estimate, y, "s", color=colour(i), markersize=6)
         y_meta = -rows - 0.4
         if _finite(meta.estimate, meta.lower, meta.upper):
             ax.fill(
@@ -161,7 +163,7 @@ def forest_svg(
         ax.set_axisbelow(True)
         ax.spines["left"].set_visible(False)
         ax.tick_params(axis="y", length=0)
-        return _svg(fig)
+        return svg(fig)
 
 
 def roc_overview_svg(curves: Sequence[CurvePoints], aucs: dict[str, str]) -> str:
@@ -174,12 +176,12 @@ def roc_overview_svg(curves: Sequence[CurvePoints], aucs: dict[str, str]) -> str
     aucs
         Formatted AUC per site name, shown in the legend.
     """
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, ax = plt.subplots(figsize=(5.6, 5.0))
         ax.plot([0, 1], [0, 1], color="#bbbbbb", linestyle=":", linewidth=1)
         for i, curve in enumerate(c for c in curves if c.site != POOLED_SITE):
             label = f"{curve.site} (AUC {aucs[curve.site]})" if curve.site in aucs else curve.site
-            ax.plot(curve.x, curve.y, color=_colour(i), linewidth=1.5, label=label)
+            ax.plot(curve.x, curve.y, color=colour(i), linewidth=1.5, label=label)
         for curve in curves:
             if curve.site == POOLED_SITE:
                 label = f"Pooled (AUC {aucs[POOLED_SITE]})" if POOLED_SITE in aucs else "Pooled"
@@ -188,7 +190,7 @@ def roc_overview_svg(curves: Sequence[CurvePoints], aucs: dict[str, str]) -> str
         ax.set_xlabel(_ROC_X)
         ax.set_ylabel(_ROC_Y)
         ax.legend(loc="lower right", frameon=False, fontsize=8)
-        return _svg(fig)
+        return svg(fig)
 
 
 _ROC_X = "1 − specificity (false-positive rate)"
@@ -222,19 +224,19 @@ def _outer_labels(axes: Sequence[Axes], columns: int, xlabel: str, ylabel: str) 
 
 def roc_small_multiples_svg(curves: Sequence[CurvePoints], aucs: dict[str, str]) -> str:
     """Draw one small ROC panel per site (pooled last), each titled with its AUC."""
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, axes = _grid(len(curves), 3, 3.0)
         for i, (ax, curve) in enumerate(zip(axes, curves, strict=True)):
             pooled = curve.site == POOLED_SITE
-            colour = _POOLED_COLOUR if pooled else _colour(i)
+            line_colour = _POOLED_COLOUR if pooled else colour(i)
             ax.plot([0, 1], [0, 1], color="#bbbbbb", linestyle=":", linewidth=1)
-            ax.plot(curve.x, curve.y, color=colour, linestyle="--" if pooled else "-")
+            ax.plot(curve.x, curve.y, color=line_colour, linestyle="--" if pooled else "-")
             name = "Pooled" if pooled else curve.site
             ax.set_title(f"{name}\nAUC {aucs[curve.site]}" if curve.site in aucs else name)
             _roc_axes(ax)
         _outer_labels(axes, 3, _ROC_X, _ROC_Y)
         fig.tight_layout()
-        return _svg(fig)
+        return svg(fig)
 
 
 def calibration_svg(curves: Sequence[CurvePoints]) -> str:
@@ -242,22 +244,22 @@ def calibration_svg(curves: Sequence[CurvePoints]) -> str:
 
     Marker area grows with the number of cases in the bin when counts are given.
     """
-    with plt.rc_context(_STYLE):
+    with plt.rc_context(STYLE):
         fig, axes = _grid(len(curves), 3, 3.0)
         for i, (ax, curve) in enumerate(zip(axes, curves, strict=True)):
             pooled = curve.site == POOLED_SITE
-            colour = _POOLED_COLOUR if pooled else _colour(i)
+            line_colour = _POOLED_COLOUR if pooled else colour(i)
             ax.plot([0, 1], [0, 1], color="#bbbbbb", linestyle=":", linewidth=1)
             sizes: list[float] | float = 24.0
             if curve.counts is not None and len(curve.counts) == len(curve.x):
                 biggest = max(max(curve.counts), 1)
                 sizes = [12.0 + 80.0 * c / biggest for c in curve.counts]
-            ax.plot(curve.x, curve.y, color=colour, linewidth=1)
-            ax.scatter(curve.x, curve.y, s=sizes, color=colour, zorder=3)
+            ax.plot(curve.x, curve.y, color=line_colour, linewidth=1)
+            ax.scatter(curve.x, curve.y, s=sizes, color=line_colour, zorder=3)
             ax.set_title("Pooled" if pooled else curve.site)
             ax.set_xlim(-0.02, 1.02)
             ax.set_ylim(-0.02, 1.02)
             ax.set_aspect("equal")
         _outer_labels(axes, 3, "Mean predicted score in bin", "Observed positive rate")
         fig.tight_layout()
-        return _svg(fig)
+        return svg(fig)

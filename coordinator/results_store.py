@@ -2,13 +2,29 @@
 
 :class:`ResultsStore` is the interface; :class:`SqliteResultsStore` implements it on one
 SQLite file with the standard library. A server database could implement the same
-interface for a coordinator shared by several studies.
+interface for a coordinator shared by several studies: every rule below is one
+conditional write in one transaction.
 
-A release is kept as the JSON text the site sent, keyed by study, site and time window.
-Writing a window that is already stored is *ignored*, not replaced: the first release
-of a window wins and ``put_window`` returns ``False``. Re-running a monitoring round is
-therefore harmless, and a changed release for the same window (which should not happen
-under a fixed protocol) is logged and left out rather than silently overwriting history.
+One current release per window. A release is kept as the JSON text the site sent, keyed
+by study, site and time window, with the number of its cases whose label is known
+(``labelled_cases``) and still pending (``pending_cases``). Labels mature after a window
+closes, so a window may be fetched again; ``put_window`` then applies one rule:
+
+- the window is not stored yet: the release is stored (:attr:`WindowWrite.STORED`);
+- the same JSON is stored already: nothing changes (:attr:`WindowWrite.UNCHANGED`);
+- the new release has *at least as many* labelled cases as the stored one: it replaces
+  it, the window's ``revisions`` count goes up by one and ``revised_at`` records when
+  (:attr:`WindowWrite.REVISED`);
+- it has fewer labelled cases (labels withdrawn, or a site's data restored from an older
+  copy): the stored release is kept and a warning logged (:attr:`WindowWrite.KEPT`).
+
+Re-running a monitoring round therefore never duplicates a window, and a window's history
+only moves towards more known labels. ``stored_at`` stays the time of the first release.
+
+Schema versions: 1 had no label counts and no revisions; opening a version-1 file adds
+the columns in one transaction and fills the counts from each stored release's
+``statistics`` (``n_positive + n_negative`` labelled, ``n_pending`` pending, as
+:class:`site_agent.release.SiteRelease` writes them; 0 where a release lacks them).
 
 Durability: the database runs in write-ahead-log mode with ``synchronous=FULL`` and each
 write is one transaction, so a window is either fully stored or absent after a crash.
@@ -20,6 +36,7 @@ import json
 import logging
 import sqlite3
 from datetime import UTC, date, datetime
+from enum import StrEnum
 from pathlib import Path
 from types import TracebackType
 from typing import Protocol, Self
@@ -28,28 +45,53 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from site_agent.exceptions import InputError
 
-SCHEMA_VERSION = 1
-"""Version of the table layout written by this module."""
+SCHEMA_VERSION = 2
+"""Version of the table layout written by this module (see the module docstring)."""
 BUSY_TIMEOUT_S = 10.0
 """How long a writer waits for another connection's lock before giving up."""
 
 _logger = logging.getLogger(__name__)
 
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS schema_version (
-    version INTEGER NOT NULL
-);
-CREATE TABLE IF NOT EXISTS windows (
-    study_id     TEXT    NOT NULL,
-    site         TEXT    NOT NULL,
-    window_start TEXT    NOT NULL,
-    window_end   TEXT    NOT NULL,
-    round_id     INTEGER NOT NULL,
-    release_json TEXT    NOT NULL,
-    stored_at    TEXT    NOT NULL,
+_VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)"
+_WINDOWS_TABLE = """
+CREATE TABLE windows (
+    study_id       TEXT    NOT NULL,
+    site           TEXT    NOT NULL,
+    window_start   TEXT    NOT NULL,
+    window_end     TEXT    NOT NULL,
+    round_id       INTEGER NOT NULL,
+    release_json   TEXT    NOT NULL,
+    stored_at      TEXT    NOT NULL,
+    labelled_cases INTEGER NOT NULL DEFAULT 0,
+    pending_cases  INTEGER NOT NULL DEFAULT 0,
+    revisions      INTEGER NOT NULL DEFAULT 0,
+    revised_at     TEXT,
     UNIQUE (study_id, site, window_start, window_end)
-);
+)
 """
+_MIGRATE_1_TO_2 = (
+    "ALTER TABLE windows ADD COLUMN labelled_cases INTEGER NOT NULL DEFAULT 0",
+    "ALTER TABLE windows ADD COLUMN pending_cases INTEGER NOT NULL DEFAULT 0",
+    "ALTER TABLE windows ADD COLUMN revisions INTEGER NOT NULL DEFAULT 0",
+    "ALTER TABLE windows ADD COLUMN revised_at TEXT",
+    "UPDATE windows SET "
+    "labelled_cases = COALESCE(json_extract(release_json, '$.statistics.n_positive'), 0) "
+    "+ COALESCE(json_extract(release_json, '$.statistics.n_negative'), 0), "
+    "pending_cases = COALESCE(json_extract(release_json, '$.statistics.n_pending'), 0)",
+)
+_COLUMNS = (
+    "study_id, site, window_start, window_end, round_id, release_json, stored_at, "
+    "labelled_cases, pending_cases, revisions, revised_at"
+)
+
+
+class WindowWrite(StrEnum):
+    """What :meth:`ResultsStore.put_window` did with a release (see the module docstring)."""
+
+    STORED = "stored"
+    REVISED = "revised"
+    UNCHANGED = "unchanged"
+    KEPT = "kept"
 
 
 class WindowRecord(BaseModel):
@@ -61,9 +103,19 @@ class WindowRecord(BaseModel):
     site: str = Field(min_length=1)
     window_start: date
     window_end: date
-    round_id: int = Field(ge=0)
+    round_id: int = Field(ge=0, description="Round that fetched the current release.")
     release_json: str
-    stored_at: datetime
+    stored_at: datetime = Field(description="When the window's first release was stored.")
+    labelled_cases: int = Field(ge=0)
+    pending_cases: int = Field(ge=0)
+    revisions: int = Field(default=0, ge=0, description="Times the release was replaced.")
+    revised_at: datetime | None = Field(default=None, description="Last replacement.")
+
+    @property
+    def label_completeness(self) -> float | None:
+        """Share of the released cases whose label is known; None without any case."""
+        known = self.labelled_cases + self.pending_cases
+        return self.labelled_cases / known if known else None
 
 
 class ResultsStore(Protocol):
@@ -78,8 +130,10 @@ class ResultsStore(Protocol):
         release_json: str,
         *,
         round_id: int,
-    ) -> bool:
-        """Store one release; return ``False`` if that window was already stored."""
+        labelled_cases: int,
+        pending_cases: int,
+    ) -> WindowWrite:
+        """Store, replace or keep one window's release by the rule of the module docstring."""
         ...
 
     def windows(self, study_id: str, site: str | None = None) -> list[WindowRecord]:
@@ -95,6 +149,11 @@ class ResultsStore(Protocol):
         ...
 
 
+def _count(name: str, value: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+        raise InputError(f"{name} must be a non-negative integer, got {value!r}")
+
+
 def _check_window(
     study_id: str, site: str, window_start: date, window_end: date, release_json: str, round_id: int
 ) -> None:
@@ -106,8 +165,7 @@ def _check_window(
         raise InputError("window bounds must be dates")
     if window_end <= window_start:
         raise InputError(f"window_end {window_end} must come after window_start {window_start}")
-    if isinstance(round_id, bool) or not isinstance(round_id, int) or round_id < 0:
-        raise InputError(f"round_id must be a non-negative integer, got {round_id!r}")
+    _count("round_id", round_id)
     try:
         json.loads(release_json)
     except (TypeError, ValueError) as error:
@@ -152,19 +210,23 @@ class SqliteResultsStore:
         connection.execute("PRAGMA synchronous = FULL")
         connection.execute("BEGIN IMMEDIATE")
         try:
-            for statement in _SCHEMA.split(";"):
-                if statement.strip():
-                    connection.execute(statement)
-            row = connection.execute("SELECT MAX(version) FROM schema_version").fetchone()
-            if row[0] is None:
+            connection.execute(_VERSION_TABLE)
+            version = connection.execute("SELECT MAX(version) FROM schema_version").fetchone()[0]
+            if version is None:
+                connection.execute(_WINDOWS_TABLE)
                 connection.execute(
                     "INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,)
                 )
-            elif row[0] > SCHEMA_VERSION:
+            elif version > SCHEMA_VERSION:
                 raise InputError(
-                    f"{self._path.name} has schema version {row[0]}; "
+                    f"{self._path.name} has schema version {version}; "
                     f"this sitepool reads up to version {SCHEMA_VERSION}"
                 )
+            elif version == 1:
+                for statement in _MIGRATE_1_TO_2:
+                    connection.execute(statement)
+                connection.execute("UPDATE schema_version SET version = 2")
+                _logger.info("%s: results store migrated to schema version 2", self._path.name)
             connection.execute("COMMIT")
         except BaseException:
             connection.execute("ROLLBACK")
@@ -179,8 +241,10 @@ class SqliteResultsStore:
         release_json: str,
         *,
         round_id: int,
-    ) -> bool:
-        """Store one release; return ``False`` (and store nothing) if the window exists.
+        labelled_cases: int,
+        pending_cases: int,
+    ) -> WindowWrite:
+        """Store, replace or keep one window's release (rule in the module docstring).
 
         Parameters
         ----------
@@ -192,54 +256,58 @@ class SqliteResultsStore:
             The site's release, as JSON text; stored unchanged.
         round_id
             The coordinator round that fetched the release.
+        labelled_cases, pending_cases
+            Cases of the release whose label is known, and still pending.
         """
         _check_window(study_id, site, window_start, window_end, release_json, round_id)
-        stored_at = datetime.now(UTC).isoformat()
+        _count("labelled_cases", labelled_cases)
+        _count("pending_cases", pending_cases)
+        now = datetime.now(UTC).isoformat()
+        key = (study_id, site, window_start.isoformat(), window_end.isoformat())
         connection = self._connection
         connection.execute("BEGIN IMMEDIATE")
         try:
-            cursor = connection.execute(
-                "INSERT OR IGNORE INTO windows (study_id, site, window_start, window_end, "
-                "round_id, release_json, stored_at) VALUES (?, ?, ?, ?, ?, ?, ?)",
-                (
-                    study_id,
-                    site,
-                    window_start.isoformat(),
-                    window_end.isoformat(),
-                    round_id,
-                    release_json,
-                    stored_at,
-                ),
-            )
-            inserted = cursor.rowcount == 1
-            existing = None
-            if not inserted:
-                existing = connection.execute(
-                    "SELECT release_json FROM windows WHERE study_id = ? AND site = ? "
-                    "AND window_start = ? AND window_end = ?",
-                    (study_id, site, window_start.isoformat(), window_end.isoformat()),
-                ).fetchone()
+            existing = connection.execute(
+                "SELECT release_json, labelled_cases FROM windows WHERE study_id = ? "
+                "AND site = ? AND window_start = ? AND window_end = ?",
+                key,
+            ).fetchone()
+            if existing is None:
+                connection.execute(
+                    f"INSERT INTO windows ({_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 0, NULL)",
+                    (*key, round_id, release_json, now, labelled_cases, pending_cases),
+                )
+                write = WindowWrite.STORED
+            elif existing[0] == release_json:
+                write = WindowWrite.UNCHANGED
+            elif labelled_cases < existing[1]:
+                write = WindowWrite.KEPT
+            else:
+                connection.execute(
+                    "UPDATE windows SET round_id = ?, release_json = ?, labelled_cases = ?, "
+                    "pending_cases = ?, revisions = revisions + 1, revised_at = ? "
+                    "WHERE study_id = ? AND site = ? AND window_start = ? AND window_end = ?",
+                    (round_id, release_json, labelled_cases, pending_cases, now, *key),
+                )
+                write = WindowWrite.REVISED
             connection.execute("COMMIT")
         except BaseException:
             connection.execute("ROLLBACK")
             raise
-        if not inserted and existing is not None and existing[0] != release_json:
+        if write is WindowWrite.KEPT:
             _logger.warning(
-                "study %s, site %s, window %s to %s is already stored with a different "
-                "release; the stored one is kept",
+                "study %s, site %s, window %s to %s: the new release has fewer labelled "
+                "cases than the stored one, which is kept",
                 study_id,
                 site,
                 window_start,
                 window_end,
             )
-        return inserted
+        return write
 
     def windows(self, study_id: str, site: str | None = None) -> list[WindowRecord]:
         """Return the stored windows of a study (one site, or all), by site then start."""
-        query = (
-            "SELECT study_id, site, window_start, window_end, round_id, release_json, stored_at "
-            "FROM windows WHERE study_id = ?"
-        )
+        query = f"SELECT {_COLUMNS} FROM windows WHERE study_id = ?"
         parameters: tuple[str, ...] = (study_id,)
         if site is not None:
             query += " AND site = ?"
@@ -256,6 +324,10 @@ class SqliteResultsStore:
                 round_id=row[4],
                 release_json=row[5],
                 stored_at=datetime.fromisoformat(row[6]),
+                labelled_cases=row[7],
+                pending_cases=row[8],
+                revisions=row[9],
+                revised_at=None if row[10] is None else datetime.fromisoformat(row[10]),
             )
             for row in rows
         ]

@@ -135,7 +135,7 @@ def run_evaluation_round(
             )
         )
     replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
-    outcome = _sorted_replies(replies, requests, protocol_hash, round_number)
+    outcome = sorted_replies(replies, requests, protocol_hash, round_number)
     if len(outcome.releases) < protocol.quorum:
         raise DeploymentError(
             f"round {round_number}: {len(outcome.releases)} of {len(node_ids)} sites released "
@@ -156,12 +156,18 @@ def run_study_rounds(grid: Grid, protocol: StudyProtocol, bundle: bytes | None) 
     )
 
 
-def _sorted_replies(
+def sorted_replies(
     replies: Iterable[Message],
     requests: dict[int, SiteRequest],
     protocol_hash: str,
     round_number: int,
 ) -> RoundOutcome:
+    """Sort a round's replies into releases, declines and faults, one answer per node asked.
+
+    A reply from a node not in ``requests``, or a second reply from a node, is ignored; a
+    node that did not answer is a fault. Used by every kind of round (evaluation,
+    monitoring) so that they check replies the same way.
+    """
     releases: dict[str, SiteRelease] = {}
     node_of_site: dict[str, int] = {}
     disclosures: dict[str, SiteDisclosure] = {}

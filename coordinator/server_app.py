@@ -10,6 +10,7 @@ study outcome, or the error that stopped the run. Both engines run this same app
 from __future__ import annotations
 
 import time
+from datetime import date
 from pathlib import Path
 
 from flwr.app import Context
@@ -29,8 +30,10 @@ RESULTS_PATH_KEY = "results-path"
 EXPECTED_SITES_KEY = "expected-sites"
 NODE_WAIT_KEY = "node-wait-s"
 STORE_PATH_KEY = "store-path"
+AS_OF_KEY = "as-of"
 """Keys of the run config this app reads; a store path switches the app to monitoring
-(:func:`~coordinator.monitoring.run_monitoring_rounds`, one round per time window)."""
+(:func:`~coordinator.monitoring.run_monitoring_rounds`, one round per time window), and
+``as-of`` (an ISO date) is the day a monitoring run takes as today."""
 
 DEFAULT_NODE_WAIT_S = 60.0
 _NODE_POLL_S = 0.5
@@ -49,6 +52,9 @@ class StudyRunConfig(BaseModel):
     store_path: Path | None = Field(
         default=None, description="Results store of a monitoring run; None for a study run."
     )
+    as_of: date | None = Field(
+        default=None, description="Monitoring only: the day taken as today; None: today."
+    )
 
     @classmethod
     def from_run_config(cls, run_config: dict[str, bool | int | float | str]) -> StudyRunConfig:
@@ -66,6 +72,7 @@ class StudyRunConfig(BaseModel):
             "expected_sites": EXPECTED_SITES_KEY,
             "node_wait_s": NODE_WAIT_KEY,
             "store_path": STORE_PATH_KEY,
+            "as_of": AS_OF_KEY,
         }
         values = {
             field: run_config[key]
@@ -89,6 +96,8 @@ class StudyRunConfig(BaseModel):
         }
         if self.store_path is not None:
             config[STORE_PATH_KEY] = str(self.store_path)
+        if self.as_of is not None:
+            config[AS_OF_KEY] = self.as_of.isoformat()
         return config
 
 
@@ -160,7 +169,7 @@ def run_configured_monitoring(grid: Grid, config: StudyRunConfig) -> MonitoringO
     bundle = None if config.bundle_path is None else _read_bundle(config.bundle_path)
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
     with SqliteResultsStore(config.store_path) as store:
-        return run_monitoring_rounds(grid, protocol, bundle, store)
+        return run_monitoring_rounds(grid, protocol, bundle, store, as_of=config.as_of)
 
 
 def _read_bundle(path: Path) -> bytes:

@@ -104,6 +104,19 @@ class MetaRow(_Record):
     note: str | None = None
 
 
+class DistributionTest(_Record):
+    """A test across sites of whether scores follow one distribution (Kruskal–Wallis)."""
+
+    cases: str = Field(description="'all cases', 'positives' or 'negatives'.")
+    method: str
+    statistic: Number
+    df: int
+    p_value: Number
+    n: int
+    sites: int
+    reason: str | None = None
+
+
 class SiteOutcome(_Record):
     """What happened with one site in the study."""
 
@@ -175,6 +188,7 @@ class StudyResults(_Record):
     two_by_two: list[TwoByTwo] = Field(default_factory=list)
     flow: list[ParticipantFlow] = Field(default_factory=list)
     meta: list[MetaRow] = Field(default_factory=list)
+    distribution_tests: list[DistributionTest] = Field(default_factory=list)
     adaptation: list[AdaptationRow] = Field(default_factory=list)
     adequate_cases: list[AdequateCases] = Field(default_factory=list)
     reference_lines: list[ReferenceLine] = Field(default_factory=list)

@@ -17,7 +17,10 @@ Targets come from the baseline windows: the pooled proportion, and the inverse-v
 weighted mean AUC. Charts watch for a fall (``side="lower"``) and start after the
 baseline; a window without labelled cases is skipped, not counted as in control.
 
-Label completeness per window is the share of released cases whose label is known.
+Label completeness per window is the share of released cases whose label is known. The
+store keeps each window's latest release (:mod:`coordinator.monitoring` asks again for
+windows with pending labels), so the analysis reads the labels known at the latest run;
+``revisions`` says how often a window's release was replaced as its labels matured.
 
 Caveats, said plainly: targets estimated from a few baseline windows make false alarms
 more frequent than the ARL tables say (Jones, Champ & Rigdon 2004); the AUC chart adds
@@ -131,6 +134,7 @@ class WindowDrift(_Model):
     n_labelled: int | None = None
     n_pending: int | None = None
     label_completeness: float | None = None
+    revisions: int = Field(default=0, description="Times the stored release was replaced.")
     psi: float | None = None
     psi_level: DriftLevel = DriftLevel.UNDETERMINED
     ks_distance: float | None = None
@@ -215,15 +219,18 @@ def analyse_windows(
             f"{settings.baseline_windows} baseline windows"
         )
     by_site: dict[str, dict[tuple[date, date], SiteRelease]] = {}
+    revisions: dict[str, dict[tuple[date, date], int]] = {}
     for record in records:
-        by_site.setdefault(record.site, {})[(record.window_start, record.window_end)] = (
-            SiteRelease.from_json(record.release_json)
-        )
+        key = (record.window_start, record.window_end)
+        by_site.setdefault(record.site, {})[key] = SiteRelease.from_json(record.release_json)
+        revisions.setdefault(record.site, {})[key] = record.revisions
     threshold = _threshold(by_site, settings.threshold)
     sites = []
     alarms: list[DriftAlarm] = []
     for site in sorted(by_site):
-        site_drift, site_alarms = _analyse_site(site, by_site[site], windows, settings, threshold)
+        site_drift, site_alarms = _analyse_site(
+            site, by_site[site], revisions[site], windows, settings, threshold
+        )
         sites.append(site_drift)
         alarms.extend(site_alarms)
     alarms.sort(key=lambda a: (a.site, a.window_number, a.metric, a.method))
@@ -304,6 +311,7 @@ def _usable_counts(c: ConfusionCounts, name: ProportionName) -> tuple[int, int]:
 def _analyse_site(
     site: str,
     releases: dict[tuple[date, date], SiteRelease],
+    revisions: dict[tuple[date, date], int],
     windows: list[tuple[date, date]],
     settings: DriftSettings,
     threshold: float | None,
@@ -331,6 +339,7 @@ def _analyse_site(
             rows.append(row)
             continue
         row.update(_counts_row(release, threshold, settings.mix_attribute))
+        row["revisions"] = revisions.get((start, end), 0)
         if index >= n_base and base_hist is not None:
             row.update(_label_free_row(release, base_hist, base_mix, settings))
             for metric, method, key, level in (

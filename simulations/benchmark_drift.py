@@ -110,6 +110,9 @@ def simulate_windows(
                     round_id=number,
                     release_json=controlled.model_dump_json(),
                     stored_at=stored_at,
+                    labelled_cases=controlled.statistics.n_positive
+                    + controlled.statistics.n_negative,
+                    pending_cases=controlled.statistics.n_pending,
                 )
             )
     return protocol.study_id, records

@@ -61,6 +61,19 @@ def rehearse_command(
     architecture: Annotated[
         str, typer.Option("--model", help="Model architecture: logistic or mlp.")
     ] = "logistic",
+    data: Annotated[
+        Path | None,
+        typer.Option(
+            "--data",
+            help=(
+                "Your own public feature table (CSV or Parquet: feature_* columns and a 0/1 "
+                "label) instead of the built-in Wisconsin breast cancer data."
+            ),
+        ),
+    ] = None,
+    label_column: Annotated[
+        str, typer.Option("--label-column", help="Label column of --data (1 = disease).")
+    ] = "label",
     adapt: Annotated[
         bool,
         typer.Option(
@@ -101,11 +114,17 @@ def rehearse_command(
             chosen = chosen.with_sites(sites)
         if seed is not None:
             chosen = chosen.model_copy(update={"seed": seed})
+        dataset = None
+        if data is not None:
+            from simulations.dataset import load_feature_table
+
+            dataset = load_feature_table(data, label_column)
         output = rehearse(
             chosen,
             out,
             engine=engine,  # type: ignore[arg-type]
             architecture=architecture,
+            dataset=dataset,
             progress=progress,
             adapt=adapt,
         )

@@ -24,6 +24,10 @@ DEFAULT_CALIBRATION_BINS = 10
 DEFAULT_REPLY_TIMEOUT_S = 300.0
 DEFAULT_WINDOW_MONTHS = 1
 DEFAULT_BASELINE_WINDOWS = 3
+DEFAULT_LABEL_HORIZON_MONTHS = 12
+"""Months after a window closes during which its pending labels are still awaited (our
+default: a year covers biopsy and most follow-up confirmations). Part of the hash contract:
+a plan at this value hashes as one written before the field existed, so never change it."""
 MAX_WINDOWS = 240
 
 
@@ -102,6 +106,13 @@ class MonitoringPlan(_Frozen):
     baseline_windows: int = Field(default=DEFAULT_BASELINE_WINDOWS, ge=1)
     mix_attributes: tuple[str, ...] = Field(
         default=(), description="Case attributes whose level counts a window release carries."
+    )
+    label_horizon_months: int = Field(
+        default=DEFAULT_LABEL_HORIZON_MONTHS,
+        ge=0,
+        le=120,
+        description="Months after a window's end during which a window with pending labels "
+        "is asked again; later its stored release is final.",
     )
 
     @model_validator(mode="after")
@@ -197,12 +208,15 @@ class StudyProtocol(_Frozen):
     def canonical_json(self) -> str:
         """Return the protocol as JSON with sorted keys and no whitespace (what is hashed).
 
-        A protocol without monitoring (or adaptation) leaves that key out, so protocols
-        written before these plans existed keep their hash (and their sites' approvals).
+        A protocol without monitoring (or adaptation) leaves that key out, and a monitoring
+        plan leaves out a label horizon at its default, so protocols written before these
+        fields existed keep their hash (and their sites' approvals).
         """
         data = self.model_dump(mode="json")
         if self.monitoring is None:
             del data["monitoring"]
+        elif self.monitoring.label_horizon_months == DEFAULT_LABEL_HORIZON_MONTHS:
+            del data["monitoring"]["label_horizon_months"]
         if self.adaptation is None:
             del data["adaptation"]
         return json.dumps(data, sort_keys=True, separators=(",", ":"))

@@ -27,7 +27,9 @@ from site_agent.protocol import EvaluationPlan, StudyProtocol, uniform_edges
 from site_agent.release import SiteRelease
 
 SITES = ("Larkspur General", "Quarry Hill Clinic", "Saltmarsh Infirmary")
-PLAN = EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(40))
+PLAN = EvaluationPlan(
+    thresholds=(0.5,), histogram_edges=uniform_edges(40), subgroups=("scanner_vendor",)
+)
 PROTOCOL = StudyProtocol(study_id="pooling-test", title="Pooling test", evaluation=PLAN)
 
 
@@ -51,6 +53,7 @@ def tables() -> dict[str, pd.DataFrame]:
                 "patient_id": [f"{name[:2]}p{i // 2}" for i in range(len(idx))],
                 "label": y[idx].astype(str),
                 "score": scores.round(6).astype(str),
+                "scanner_vendor": ["Vendor A" if i % 3 else "Vendor B" for i in idx],
             }
         )
     return out
@@ -68,7 +71,11 @@ def raw_releases(tables: dict[str, pd.DataFrame]) -> dict[str, SiteRelease]:
 
 @pytest.fixture(scope="module")
 def releases(raw_releases: dict[str, SiteRelease]) -> dict[str, SiteRelease]:
-    policy = SitePolicy(min_cell=5, small_cells=SmallCellAction.MERGE)
+    policy = SitePolicy(
+        min_cell=5,
+        small_cells=SmallCellAction.MERGE,
+        allowed_subgroup_attributes=("scanner_vendor",),
+    )
     return {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
 
 
@@ -148,3 +155,46 @@ def test_declined_and_silent_sites_are_reported_with_reasons(
     assert status[SITES[2]].status == "declined"
     assert status["Tidewater Hospital"].status == "silent"
     assert any("Tidewater Hospital" in f for f in results.findings)
+
+
+def test_score_distribution_test_equals_scipy_kruskal_on_binned_scores(
+    tables: dict[str, pd.DataFrame], raw_releases: dict[str, SiteRelease]
+) -> None:
+    """The across-site Kruskal–Wallis equals scipy.stats.kruskal on each case's score bin."""
+    from scipy.stats import kruskal
+
+    results = build_results(PROTOCOL, _outcome(raw_releases, []), engine="test")
+    test = next(t for t in results.distribution_tests if t.cases == "all cases")
+    edges = np.array(PLAN.histogram_edges)
+    binned = [  # numpy.histogram's bins: [e_i, e_i+1), the last one closed
+        np.clip(np.searchsorted(edges, t["score"].astype(float), side="right") - 1, 0, 39)
+        for t in (tables[name] for name in sorted(tables))
+    ]
+    reference = kruskal(*binned)  # scipy reference, tie-corrected
+    assert test.statistic == pytest.approx(reference.statistic, rel=1e-9)
+    assert test.p_value == pytest.approx(reference.pvalue, rel=1e-9)
+
+
+def test_pooled_subgroup_sensitivity_equals_recall_on_that_subgroup_of_the_union(
+    tables: dict[str, pd.DataFrame], raw_releases: dict[str, SiteRelease]
+) -> None:
+    """Vendor B's cases from every site, pooled: scikit-learn's recall on the same cases."""
+    results = build_results(PROTOCOL, _outcome(raw_releases, []), engine="test")
+    row = next(
+        m
+        for m in results.metrics
+        if m.site == POOLED
+        and m.subgroup == "scanner_vendor=Vendor B"
+        and m.metric == "sensitivity"
+    )
+    union = pd.concat(tables.values())
+    vendor_b = union[union["scanner_vendor"] == "Vendor B"]
+    called = (vendor_b["score"].astype(float) >= 0.5).astype(int)
+    assert row.estimate == pytest.approx(recall_score(vendor_b["label"].astype(int), called))
+    auc = next(
+        m
+        for m in results.metrics
+        if m.site == POOLED and m.subgroup == "scanner_vendor=Vendor B" and m.metric == "auc"
+    )
+    exact = roc_auc_score(vendor_b["label"].astype(int), vendor_b["score"].astype(float))
+    assert auc.bound is not None and abs(auc.estimate - exact) <= auc.bound + 1e-12

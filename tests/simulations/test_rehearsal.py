@@ -100,3 +100,27 @@ def test_rehearsal_completes_with_one_site_declining(tmp_path: Path) -> None:
     assert refusing in (tmp_path / "report.html").read_text()
     ledger = (tmp_path / "site-data" / scenario.sites[2].slug / "ledger.jsonl").read_text()
     assert json.loads(ledger.splitlines()[-1])["outcome"] == "declined"
+
+
+def test_rehearse_command_takes_a_user_feature_table(tmp_path: Path) -> None:
+    """--data runs the rehearsal on a user's table (here scikit-learn's copy, re-labelled)."""
+    from sklearn.datasets import load_breast_cancer
+    from typer.testing import CliRunner
+
+    from simulations.cli import app
+
+    data = load_breast_cancer()
+    frame = pd.DataFrame(
+        data.data, columns=[f"feature_{n.replace(' ', '_')}" for n in data.feature_names]
+    )
+    frame["diagnosis"] = 1 - data.target  # scikit-learn codes 0 = malignant
+    path = tmp_path / "features.csv"
+    frame.to_csv(path, index=False)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(
+        app, ["rehearse", "--out", str(out), "--data", str(path), "--label-column", "diagnosis"]
+    )
+    assert result.exit_code == 0, result.output
+    assert (out / "report.html").exists()
+    bad = CliRunner().invoke(app, ["rehearse", "--out", str(out), "--data", str(path)])
+    assert bad.exit_code == 2 and "no label column 'label'" in bad.output
