@@ -79,11 +79,12 @@ def rehearse_command(
         typer.Option(
             "--adapt/--no-adapt",
             help=(
-                "Also fine-tune at each site on 0, 10, 25, 50, 100 and all local cases, "
-                "run federated fine-tuning, and draw the four reference lines."
+                "Fine-tune at each site on 0, 10, 25, 50, 100 and all local cases, run "
+                "federated fine-tuning, and draw the four reference lines (on by default; "
+                "--no-adapt evaluates only)."
             ),
         ),
-    ] = False,
+    ] = True,
 ) -> None:
     """Run a rehearsal and say where its report is."""
     from simulations.rehearsal import rehearse

@@ -8,9 +8,11 @@ keeps the original cases acquired before the event's month and the changed site'
 from that month on. Case and patient ids of the later part get a suffix, so no id is
 shared between the two parts.
 
-:func:`with_pending_labels` blanks the label of every case acquired in the scenario's
-last ``pending_label_months`` months, as a hospital whose biopsy or follow-up results
-have not come back yet would have it.
+:func:`with_pending_labels` writes a site's table as it stands on a given day: the label
+of every case acquired in the ``pending_label_months`` months before that day is blank,
+as a hospital whose biopsy or follow-up results have not come back yet would have it.
+On the day the scenario ends, the last ``pending_label_months`` months are pending; that
+many months later, every label has come back.
 
 Invented data for rehearsal only.
 """
@@ -18,6 +20,7 @@ Invented data for rehearsal only.
 from __future__ import annotations
 
 import dataclasses
+from datetime import date
 
 import pandas as pd
 
@@ -74,11 +77,23 @@ def build_drifting_sites(scenario: Scenario, dataset: FeatureTable) -> list[Synt
     return sites
 
 
-def with_pending_labels(table: pd.DataFrame, scenario: Scenario) -> pd.DataFrame:
-    """Return ``table`` with the labels of the last ``pending_label_months`` months blank."""
+def scenario_end(scenario: Scenario) -> date:
+    """Return the day after the scenario's last month (the end of its last window)."""
+    end: date = (pd.Timestamp(scenario.start_date) + pd.DateOffset(months=scenario.months)).date()
+    return end
+
+
+def with_pending_labels(
+    table: pd.DataFrame, scenario: Scenario, as_of: date | None = None
+) -> pd.DataFrame:
+    """Return ``table`` as of ``as_of`` (default: the scenario's end), recent labels blank.
+
+    A case's label is pending when the case was acquired less than
+    ``pending_label_months`` months before ``as_of``.
+    """
     if scenario.pending_label_months == 0:
         return table
-    end = pd.Timestamp(scenario.start_date) + pd.DateOffset(months=scenario.months)
+    end = pd.Timestamp(as_of or scenario_end(scenario))
     cutoff = (end - pd.DateOffset(months=scenario.pending_label_months)).strftime("%Y-%m-%d")
     out = table.copy()
     out["label"] = out["label"].astype(object)

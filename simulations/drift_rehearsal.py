@@ -3,12 +3,19 @@
 The rehearsal builds the scenario's sites with its drift events spliced in
 (:mod:`simulations.drift_events`), develops the model at the development site on a
 patient-grouped training part (that site is then monitored on its held-out cases only),
-blanks the labels of the last ``pending_label_months`` months, lays out each invented
-hospital (cases, a policy that allows monitoring, an approval, a ledger) under
-``out/site-data/<site>/``, registers a monitoring protocol with one window per month,
-and runs it on the chosen engine. Every released window goes into the results store
-``out/monitoring.sqlite``; running the rehearsal again into the same directory resumes
-and stores nothing twice.
+lays out each invented hospital (a policy that allows monitoring, an approval, a ledger)
+under ``out/site-data/<site>/``, registers a monitoring protocol with one window per
+month, and runs it on the chosen engine in two passes, as labels mature:
+
+1. as of the scenario's end, when the labels of its last ``pending_label_months`` months
+   are still pending (each site's ``cases.csv`` is written as it stands that day);
+2. ``maturation_months`` later, when those labels have come back (``cases.csv`` written
+   again, every label known). Only the windows stored with pending labels are asked
+   again; their stored releases are replaced, never duplicated.
+
+Every released window goes into the results store ``out/monitoring.sqlite``; running the
+rehearsal again into the same directory resumes and stores nothing twice. Without
+pending labels in the scenario there is one pass.
 
 Invented data for rehearsal only; sitepool is a research tool, not a medical device.
 """
@@ -18,16 +25,24 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
+from datetime import date
 from importlib import resources
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from coordinator.engines import Engine, run_monitoring
-from coordinator.monitoring import MonitoringOutcome
+from coordinator.monitoring import MonitoringOutcome, monitoring_windows
+from coordinator.results_store import SqliteResultsStore
 from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
-from simulations.drift_events import build_drifting_sites, event_start, with_pending_labels
+from simulations.drift_events import (
+    build_drifting_sites,
+    event_start,
+    scenario_end,
+    with_pending_labels,
+)
 from simulations.scenario import Scenario
 from simulations.sites import development_split
 from site_agent.approvals import approve
@@ -55,6 +70,9 @@ scores near 0 and 1). Eight coarse bins: a site suppresses small cells of the po
 negative and pending rows, and coarse bins keep that from reshaping the label-free row."""
 DEFAULT_BASELINE_WINDOWS = 6
 """Months of baseline in the rehearsal: half a year before the first event can start."""
+DEFAULT_MATURATION_MONTHS = 3
+"""Months between the two monitoring passes; more than the scenario's pending months, so
+every pending label has come back by the second pass."""
 
 Progress = Callable[[str], None]
 
@@ -69,14 +87,37 @@ class InjectedEvent:
 
 
 @dataclass(frozen=True, slots=True)
+class MonitoringPass:
+    """One monitoring run of the rehearsal and the label completeness it left in the store.
+
+    ``label_completeness`` maps each site to one value per protocol window, in order: the
+    share of the stored release's cases with a known label, None where nothing is stored.
+    """
+
+    as_of: date
+    outcome: MonitoringOutcome
+    label_completeness: dict[str, tuple[float | None, ...]]
+
+    def mean_completeness(self) -> float:
+        """Return the mean completeness over every stored (site, window)."""
+        values = [c for row in self.label_completeness.values() for c in row if c is not None]
+        return sum(values) / len(values) if values else 0.0
+
+
+@dataclass(frozen=True, slots=True)
 class MonitoredStudy:
-    """What a monitoring rehearsal ran and where its results store is."""
+    """What a monitoring rehearsal ran, pass by pass, and where its results store is."""
 
     protocol: StudyProtocol
     store_path: Path
-    outcome: MonitoringOutcome
+    passes: tuple[MonitoringPass, ...]
     events: tuple[InjectedEvent, ...]
     sites: tuple[str, ...]
+
+    @property
+    def outcome(self) -> MonitoringOutcome:
+        """Return the latest pass's outcome."""
+        return self.passes[-1].outcome
 
 
 def drift_scenario() -> Scenario:
@@ -135,10 +176,16 @@ def rehearse_drift(
     *,
     engine: Engine = "inprocess",
     baseline_windows: int = DEFAULT_BASELINE_WINDOWS,
+    maturation_months: int = DEFAULT_MATURATION_MONTHS,
     dataset: FeatureTable | None = None,
     progress: Progress | None = None,
 ) -> MonitoredStudy:
-    """Lay out the drifting sites and run every monitoring window into the results store.
+    """Lay out the drifting sites and run the monitoring passes into the results store.
+
+    Parameters
+    ----------
+    maturation_months
+        Months from the first pass (the scenario's end) to the second; 0: one pass only.
 
     Raises
     ------
@@ -164,11 +211,11 @@ def rehearse_drift(
     protocol = monitoring_protocol(scenario, model, baseline_windows=baseline_windows)
     policy = monitoring_policy()
     settings = []
+    tables = []
     for site in sites:
         home = out / "site-data" / site.spec.slug
         home.mkdir(parents=True, exist_ok=True)
-        table = held_out if site is development else site.table
-        with_pending_labels(table, scenario).to_csv(home / "cases.csv", index=False)
+        tables.append(held_out if site is development else site.table)
         (home / "policy.json").write_text(policy.model_dump_json(indent=2))
         approve(protocol, home / policy.approvals_file)
         settings.append(
@@ -181,21 +228,52 @@ def rehearse_drift(
         )
     for event in scenario.drift_events:
         say(f"injected: {event.site} from {event_start(scenario, event).date()}")
-    say(f"running {scenario.months} monthly windows on the {engine} engine")
     store_path = out / STORE_FILE
-    outcome = run_monitoring(
-        protocol,
-        bundle_path,
-        settings,
-        store_path=store_path,
-        engine=engine,
-        workdir=out / "run",
-        progress=say,
-    )
+    passes = []
+    for number, as_of in enumerate(pass_dates(scenario, maturation_months), start=1):
+        for table, site_settings in zip(tables, settings, strict=True):
+            assert site_settings.data_path is not None
+            with_pending_labels(table, scenario, as_of).to_csv(site_settings.data_path, index=False)
+        say(f"pass {number} as of {as_of}: {scenario.months} monthly windows, {engine} engine")
+        outcome = run_monitoring(
+            protocol,
+            bundle_path,
+            settings,
+            store_path=store_path,
+            engine=engine,
+            workdir=out / "run",
+            as_of=as_of,
+            progress=say,
+        )
+        passes.append(MonitoringPass(as_of, outcome, stored_completeness(store_path, protocol)))
+        say(f"pass {number}: {outcome.revised_windows()} site window(s) updated")
     return MonitoredStudy(
         protocol=protocol,
         store_path=store_path,
-        outcome=outcome,
+        passes=tuple(passes),
         events=injected_events(scenario),
         sites=tuple(s.name for s in sites),
     )
+
+
+def pass_dates(scenario: Scenario, maturation_months: int) -> tuple[date, ...]:
+    """Return the day of each monitoring pass: the scenario's end, then once labels matured."""
+    first = scenario_end(scenario)
+    if scenario.pending_label_months == 0 or maturation_months == 0:
+        return (first,)
+    second: date = (pd.Timestamp(first) + pd.DateOffset(months=maturation_months)).date()
+    return (first, second)
+
+
+def stored_completeness(
+    store_path: Path, protocol: StudyProtocol
+) -> dict[str, tuple[float | None, ...]]:
+    """Return each site's label completeness per protocol window, as the store holds it."""
+    assert protocol.monitoring is not None
+    windows = [(w.start, w.end) for w in monitoring_windows(protocol.monitoring)]
+    with SqliteResultsStore(store_path) as store:
+        records = store.windows(protocol.study_id)
+    by_site: dict[str, dict[tuple[date, date], float | None]] = {}
+    for r in records:
+        by_site.setdefault(r.site, {})[(r.window_start, r.window_end)] = r.label_completeness
+    return {site: tuple(values.get(w) for w in windows) for site, values in sorted(by_site.items())}

@@ -138,9 +138,13 @@ def _rehearse(
             for e in study.events
         ),
     ]
-    if chosen.pending_label_months:
+    for number, done in enumerate(study.passes, start=1):
+        pending = sum(len(w.awaiting_labels) for w in done.outcome.windows)
         context.append(
-            f"Labels of the last {chosen.pending_label_months} month(s) are still pending."
+            f"Monitoring pass {number} as of {done.as_of}: "
+            f"{done.outcome.revised_windows()} site window(s) updated as labels matured, "
+            f"{pending} still awaiting labels; mean label completeness "
+            f"{100 * done.mean_completeness():.1f}%."
         )
     return study.store_path, study.protocol.study_id, context
 

@@ -1,4 +1,4 @@
-"""Monitoring rounds on the in-process engine: windows stored once, resumed, pending labels.
+"""Monitoring rounds on the in-process engine: windows stored once, resumed, labels maturing.
 
 Invented hospitals and numbers, for tests only. Uses the real Flower ServerApp and
 ClientApp, real SQLite, the sites' real policies and ledgers.
@@ -14,15 +14,17 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy.stats import chi2_contingency
-from sklearn.metrics import roc_auc_score
+from sklearn.metrics import recall_score, roc_auc_score
 
 from coordinator.engines import run_monitoring
 from coordinator.monitoring import MonitoringOutcome
 from coordinator.results_store import SqliteResultsStore
 from coordinator.window_drift import DriftSettings, analyse_windows
 from site_agent.approvals import approve
+from site_agent.ledger import ReleaseLedger
 from site_agent.policy import SitePolicy
 from site_agent.protocol import (
+    DEFAULT_LABEL_HORIZON_MONTHS,
     EvaluationPlan,
     MonitoringPlan,
     Operation,
@@ -38,6 +40,7 @@ POLICY = SitePolicy(
 UNSUPPRESSED = POLICY.model_copy(update={"min_cell": 1})
 """A policy that suppresses nothing, for checks of exact counts."""
 SITES = ("larkspur-general", "quarry-hill-clinic")
+EARLIER_HASH = "d20e1c2875c16c793c136b74f3246515b9eda0d695297efb2aba61ef571cb984"
 
 
 def _protocol(windows: int = 3) -> StudyProtocol:
@@ -103,11 +106,37 @@ def _sites(
 
 
 def _run(
-    tmp_path: Path, protocol: StudyProtocol, sites: list[SiteSettings], store: Path
+    tmp_path: Path,
+    protocol: StudyProtocol,
+    sites: list[SiteSettings],
+    store: Path,
+    as_of: date | None = None,
 ) -> MonitoringOutcome:
     return run_monitoring(
-        protocol, None, sites, store_path=store, engine="inprocess", workdir=tmp_path / "run"
+        protocol,
+        None,
+        sites,
+        store_path=store,
+        engine="inprocess",
+        workdir=tmp_path / "run",
+        as_of=as_of,
     )
+
+
+def _rewrite_tables(sites: list[SiteSettings], pending_from: str = "") -> None:
+    """Write each site's table again as it stands later: same cases, labels as given."""
+    for i, site in enumerate(sites):
+        assert site.data_path is not None
+        _table(20 + i, pending_from=pending_from).to_csv(site.data_path, index=False)
+
+
+def _requests(sites: list[SiteSettings]) -> list[int]:
+    """Count the monitor requests each site answered, from its release ledger."""
+    return [
+        sum(e.operation == "monitor" for e in ReleaseLedger(s.ledger_path).entries())
+        for s in sites
+        if s.ledger_path is not None
+    ]
 
 
 def test_each_window_is_stored_once_and_a_rerun_stores_nothing(tmp_path: Path) -> None:
@@ -225,3 +254,74 @@ def test_a_window_without_cases_is_declined_with_a_reason_and_not_stored(tmp_pat
     assert empty.stored == []
     assert [d.site for d in empty.declines] == list(SITES)
     assert all(d.reason.startswith("window_without_cases") for d in empty.declines)
+
+
+def test_a_window_fetched_with_pending_labels_is_updated_when_its_labels_arrive(
+    tmp_path: Path,
+) -> None:
+    """Re-fetched once labels arrived, March is replaced, not duplicated; full months not asked."""
+    protocol = _protocol()
+    sites = _sites(tmp_path, protocol, UNSUPPRESSED, pending_from="2031-03-15")
+    store = tmp_path / "store.sqlite"
+    first = _run(tmp_path, protocol, sites, store, as_of=date(2031, 4, 1))
+    asked_first = _requests(sites)
+    _rewrite_tables(sites)  # a month later every label has come back
+
+    second = _run(tmp_path, protocol, sites, store, as_of=date(2031, 5, 1))
+    asked_second = _requests(sites)
+    third = _run(tmp_path, protocol, sites, store, as_of=date(2031, 6, 1))
+
+    assert [w.awaiting_labels for w in first.windows] == [[], [], list(SITES)]
+    assert [w.skipped for w in second.windows] == [True, True, False]
+    assert second.windows[2].revised == list(SITES) and second.windows[2].stored == []
+    assert all(w.skipped for w in third.windows)
+    # Requests each site received, counted in its own release ledger: three, then one more.
+    assert asked_first == [3, 3]
+    assert asked_second == _requests(sites) == [4, 4]
+    with SqliteResultsStore(store) as opened:
+        records = opened.windows(protocol.study_id)
+    assert len(records) == len(SITES) * 3
+    (march,) = [r for r in records if r.site == SITES[0] and r.window_start.month == 3]
+    assert (march.revisions, march.pending_cases, march.label_completeness) == (1, 0, 1.0)
+    table = pd.read_csv(sites[0].data_path, dtype=str, keep_default_na=False)
+    cases = table[table["acquired_on"].str.startswith("2031-03")]
+    labels, scores = cases["label"].astype(int), cases["score"].astype(float)
+    release = SiteRelease.from_json(march.release_json)
+    assert march.labelled_cases == len(cases)  # pandas row count of the month
+    # Reference: scikit-learn's roc_auc_score and recall_score on every March case.
+    assert release.exact.auc.auc == pytest.approx(roc_auc_score(labels, scores), abs=1e-12)
+    findings = analyse_windows(protocol.study_id, records, DriftSettings(baseline_windows=1))
+    window = next(s for s in findings.sites if s.site == SITES[0]).windows[2]
+    expected_sensitivity = recall_score(labels, (scores >= 0.5).astype(int))
+    assert window.sensitivity == pytest.approx(expected_sensitivity, abs=1e-12)
+    assert (window.label_completeness, window.revisions) == (1.0, 1)
+
+
+def test_a_window_past_the_label_horizon_is_final_and_not_asked_again(tmp_path: Path) -> None:
+    """A year after March closed, its pending labels are no longer awaited (default horizon)."""
+    protocol = _protocol()
+    sites = _sites(tmp_path, protocol, UNSUPPRESSED, pending_from="2031-03-15")
+    store = tmp_path / "store.sqlite"
+    _run(tmp_path, protocol, sites, store, as_of=date(2031, 4, 1))
+    _rewrite_tables(sites)
+
+    # March ends 2031-04-01; the horizon adds the plan's 12 months (our default).
+    late = _run(tmp_path, protocol, sites, store, as_of=date(2032, 4, 1))
+
+    assert DEFAULT_LABEL_HORIZON_MONTHS == 12
+    assert all(w.skipped for w in late.windows)
+    assert _requests(sites) == [3, 3]
+
+
+def test_a_plan_at_the_default_horizon_keeps_its_earlier_protocol_hash() -> None:
+    """The horizon at its default leaves the hash of a protocol written before it existed."""
+    protocol = _protocol()
+    assert protocol.monitoring is not None
+    plan = protocol.monitoring.model_copy(update={"label_horizon_months": 18})
+    longer = protocol.model_copy(update={"monitoring": plan})
+
+    # Reference: this protocol's hash under site_agent/protocol.py of commit d9a8bdb, the
+    # version before label_horizon_months existed.
+    assert protocol.content_hash() == EARLIER_HASH
+    assert "label_horizon_months" not in protocol.canonical_json()
+    assert longer.content_hash() != EARLIER_HASH

@@ -1,7 +1,8 @@
 """The monitoring rehearsal and ``sitepool monitor``, end to end on the in-process engine.
 
 Invented hospitals drawn from the public Wisconsin breast cancer data (scikit-learn), for
-tests only. One rehearsal (seeded) is shared by the tests of this module.
+tests only. One rehearsal (seeded, two monitoring passes) is shared by the tests of this
+module.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from coordinator.window_drift import DriftFindings, DriftSettings, analyse_windo
 from simulations.cli import app
 from simulations.drift_rehearsal import MonitoredStudy, drift_scenario, rehearse_drift
 from simulations.scenario import Scenario
+from site_agent.ledger import ReleaseLedger
 from site_agent.notices import RESEARCH_NOTICE
 
 SCANNER_SITE = "Kestrel Valley Hospital"
@@ -77,16 +79,33 @@ def test_stable_sites_raise_no_label_free_alarm(
     assert noisy == []
 
 
-def test_pending_months_show_as_incomplete_labels(
+def test_second_pass_completes_the_months_the_first_left_pending(
     rehearsal: tuple[MonitoredStudy, DriftFindings],
 ) -> None:
-    """The scenario's last two months have no known label; earlier months are complete."""
-    _, findings = rehearsal
+    """Pass 1 has no label for the last two months; pass 2 has them all, updated in place."""
+    study, findings = rehearsal
+    first, second = study.passes
 
+    for site in study.sites:
+        assert first.label_completeness[site] == (1.0,) * 10 + (0.0, 0.0)
+        assert second.label_completeness[site] == (1.0,) * 12
+    assert second.mean_completeness() > first.mean_completeness()
+    assert [w.skipped for w in second.outcome.windows] == [True] * 10 + [False] * 2
+    assert [sorted(w.revised) for w in second.outcome.windows[10:]] == [sorted(study.sites)] * 2
     for site in findings.sites:
-        completeness = [w.label_completeness for w in site.windows]
-        assert completeness[:10] == [1.0] * 10
-        assert completeness[10:] == [0.0, 0.0]
+        assert [w.revisions for w in site.windows] == [0] * 10 + [1, 1]
+
+
+def test_second_pass_asks_each_site_only_for_its_two_incomplete_windows(
+    rehearsal: tuple[MonitoredStudy, DriftFindings],
+) -> None:
+    """Each site's release ledger holds twelve monitor requests from pass 1 and two more."""
+    study, _ = rehearsal
+    ledgers = sorted((study.store_path.parent / "site-data").glob("*/ledger.jsonl"))
+
+    asked = [sum(e.operation == "monitor" for e in ReleaseLedger(p).entries()) for p in ledgers]
+
+    assert asked == [12 + 2] * len(study.sites)
 
 
 class _Receiver(BaseHTTPRequestHandler):
@@ -138,6 +157,7 @@ def test_monitor_command_writes_the_report_and_posts_alarms(
     page = (tmp_path / "drift-report.html").read_text()
     assert page.count(RESEARCH_NOTICE) == 2
     assert page.index('id="alarm-summary"') < page.index('id="label-completeness"')
+    assert '<p id="label-updates">6 site window(s) were fetched again' in page  # 3 sites × 2
     assert (tmp_path / "drift-windows.csv").read_text().count("\n") == 1 + 3 * 12
     alerts = [json.loads(body) for body in bodies]
     posted = {(a["site"], a["metric"], a["method"]) for a in alerts}
