@@ -237,9 +237,10 @@ def test_merge_rebins_histograms_to_shared_edges() -> None:
     expected_pos, _ = np.histogram(scores[labels == 1], bins=np.array(uniform_edges(10)))
     assert merged.histogram.edges == uniform_edges(10)
     assert merged.histogram.positive == tuple(int(x) for x in expected_pos)
-    assert merged.calibration.count == compute_statistics(
-        validate_predictions(frame), coarse
-    ).calibration.count
+    assert (
+        merged.calibration.count
+        == compute_statistics(validate_predictions(frame), coarse).calibration.count
+    )
 
 
 def test_merge_refuses_histograms_without_shared_bins() -> None:
