@@ -52,6 +52,11 @@ def adaptation_curves_svg(results: StudyResults) -> str:
         rows_n, columns, figsize=(3.4 * columns, 2.7 * rows_n), squeeze=False, sharey=True
     )
     flat = [ax for row in axes for ax in row]
+    estimates = [r.estimate for r in results.adaptation if r.metric == "auc"]
+    finite = [v for v in estimates if math.isfinite(v)]
+    # Zoom to the estimates (AUCs near 1 are otherwise flat lines); wide intervals are cut
+    # at the axis and given in full in the table below.
+    bottom = max(0.5, math.floor((min(finite, default=0.5) - 0.05) * 20) / 20)
     for i, site in enumerate(sites):
         ax = flat[i]
         curve = [r for r in results.adaptation if r.site == site and r.metric == "auc"]
@@ -62,6 +67,7 @@ def adaptation_curves_svg(results: StudyResults) -> str:
         ax.errorbar(x, y, yerr=[low, high], marker="o", capsize=3, color=colour(i))
         if margin is not None and math.isfinite(margin.reference_auc):
             ax.axhline(margin.reference_auc - margin.margin, linestyle="--", color="#555555")
+        ax.set_ylim(bottom, 1.005)
         ax.set_xticks(x, labels)
         ax.set_title(site, fontsize=9)
         ax.set_xlabel("local training cases", fontsize=8)

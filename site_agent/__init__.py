@@ -1,1 +1,141 @@
-"""site_agent package."""
+"""The site agent: what a hospital runs beside its own data, and the wire contract.
+
+Public names are imported on first use (PEP 562), so that importing one module does
+not pay for the rest: torch, Flower and OpenDP load only where they are needed.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING, Any
+
+_EXPORTS: dict[str, str] = {
+    "BundleError": "site_agent.exceptions",
+    "DeploymentError": "site_agent.exceptions",
+    "DisclosureRefused": "site_agent.exceptions",
+    "EvaluationPlan": "site_agent.protocol",
+    "InputError": "site_agent.exceptions",
+    "LedgerError": "site_agent.exceptions",
+    "MetricsSummary": "site_agent.metrics",
+    "ModelBundle": "site_agent.model_bundle",
+    "ModelReference": "site_agent.protocol",
+    "Operation": "site_agent.protocol",
+    "Predictions": "site_agent.predictions",
+    "PredictionsError": "site_agent.exceptions",
+    "ProtocolError": "site_agent.exceptions",
+    "RESEARCH_NOTICE": "site_agent.notices",
+    "ReleaseLedger": "site_agent.ledger",
+    "ScenarioError": "site_agent.exceptions",
+    "SitePolicy": "site_agent.policy",
+    "SiteRelease": "site_agent.release",
+    "SiteReply": "site_agent.wire",
+    "SiteRequest": "site_agent.wire",
+    "SiteSettings": "site_agent.service",
+    "SitepoolError": "site_agent.exceptions",
+    "StudyProtocol": "site_agent.protocol",
+    "SufficientStatistics": "site_agent.summaries",
+    "answer": "site_agent.service",
+    "apply_policy": "site_agent.disclosure",
+    "approve": "site_agent.approvals",
+    "bundle_sha256": "site_agent.model_bundle",
+    "compute_statistics": "site_agent.summaries",
+    "disclosure_mod": "site_agent.disclosure",
+    "evaluate_site": "site_agent.evaluation",
+    "is_approved": "site_agent.approvals",
+    "load_bundle": "site_agent.model_bundle",
+    "load_predictions": "site_agent.predictions",
+    "read_table": "site_agent.predictions",
+    "save_bundle": "site_agent.model_bundle",
+    "summarize": "site_agent.metrics",
+    "validate_predictions": "site_agent.predictions",
+    "verify_ledger": "site_agent.ledger",
+}
+
+__all__ = [
+    "RESEARCH_NOTICE",
+    "BundleError",
+    "DeploymentError",
+    "DisclosureRefused",
+    "EvaluationPlan",
+    "InputError",
+    "LedgerError",
+    "MetricsSummary",
+    "ModelBundle",
+    "ModelReference",
+    "Operation",
+    "Predictions",
+    "PredictionsError",
+    "ProtocolError",
+    "ReleaseLedger",
+    "ScenarioError",
+    "SitePolicy",
+    "SiteRelease",
+    "SiteReply",
+    "SiteRequest",
+    "SiteSettings",
+    "SitepoolError",
+    "StudyProtocol",
+    "SufficientStatistics",
+    "answer",
+    "apply_policy",
+    "approve",
+    "bundle_sha256",
+    "compute_statistics",
+    "disclosure_mod",
+    "evaluate_site",
+    "is_approved",
+    "load_bundle",
+    "load_predictions",
+    "read_table",
+    "save_bundle",
+    "summarize",
+    "validate_predictions",
+    "verify_ledger",
+]
+
+
+def __getattr__(name: str) -> Any:
+    """Import a public name from the module that defines it, on first use."""
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module 'site_agent' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted([*globals(), *__all__])
+
+
+if TYPE_CHECKING:
+    from site_agent.approvals import approve, is_approved
+    from site_agent.disclosure import apply_policy, disclosure_mod
+    from site_agent.evaluation import evaluate_site
+    from site_agent.exceptions import (
+        BundleError,
+        DeploymentError,
+        DisclosureRefused,
+        InputError,
+        LedgerError,
+        PredictionsError,
+        ProtocolError,
+        ScenarioError,
+        SitepoolError,
+    )
+    from site_agent.ledger import ReleaseLedger, verify_ledger
+    from site_agent.metrics import MetricsSummary, summarize
+    from site_agent.model_bundle import ModelBundle, bundle_sha256, load_bundle, save_bundle
+    from site_agent.notices import RESEARCH_NOTICE
+    from site_agent.policy import SitePolicy
+    from site_agent.predictions import (
+        Predictions,
+        load_predictions,
+        read_table,
+        validate_predictions,
+    )
+    from site_agent.protocol import EvaluationPlan, ModelReference, Operation, StudyProtocol
+    from site_agent.release import SiteRelease
+    from site_agent.service import SiteSettings, answer
+    from site_agent.summaries import SufficientStatistics, compute_statistics
+    from site_agent.wire import SiteReply, SiteRequest

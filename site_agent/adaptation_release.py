@@ -4,7 +4,8 @@ An :class:`AdaptationRelease` carries, for one site, the model's performance on 
 held-out local test set before any fine-tuning (``before``) and after fine-tuning on each
 requested number of local training cases and seed (``points``): the DeLong AUC with its
 interval, and at each protocol threshold the confusion counts with Wilson intervals for
-sensitivity and specificity. Besides these it carries only sizes (training pool, test set,
+sensitivity and specificity; and for each fine-tuned point the paired DeLong difference
+``after − before`` with its variance, both AUCs measured on the same held-out cases. Besides these it carries only sizes (training pool, test set,
 cases actually used). Every list is bounded by the protocol's grid and thresholds, so no
 per-case value has a place to go.
 
@@ -17,11 +18,21 @@ Undefined statistics are ``None`` with a ``reason``; JSON never carries NaN.
 
 from __future__ import annotations
 
+import math
+
 from pydantic import BaseModel, ConfigDict, Field
 
 from site_agent.exceptions import DisclosureRefused
 from site_agent.policy import SitePolicy
-from site_agent.release import SITE_NAME_PATTERN, UNREGISTERED_PROTOCOL, AucRecord, EstimateRecord
+from site_agent.release import (
+    SITE_NAME_PATTERN,
+    UNDEFINED,
+    UNREGISTERED_PROTOCOL,
+    AucRecord,
+    EstimateRecord,
+    finite_or_none,
+)
+from site_agent.roc import AucDifference
 
 MAX_POINTS = 2_000
 """Most (case count, seed) points one release may carry."""
@@ -54,6 +65,39 @@ class Performance(_Record):
     at_thresholds: tuple[ThresholdPerformance, ...] = Field(max_length=MAX_THRESHOLDS)
 
 
+class AucChange(_Record):
+    """Paired DeLong difference of AUCs, after − before fine-tuning, on the same test cases.
+
+    References
+    ----------
+    DeLong ER, DeLong DM, Clarke-Pearson DL (1988). Biometrics 44:837-845, eqs. 5-6
+    (see :func:`site_agent.roc.paired_delong`).
+    """
+
+    difference: float | None
+    variance: float | None
+    lower: float | None
+    upper: float | None
+    p_value: float | None
+    confidence: float = Field(gt=0.0, lt=1.0)
+    reason: str | None = None
+
+    @classmethod
+    def of(cls, d: AucDifference) -> AucChange:
+        """Convert an :class:`~site_agent.roc.AucDifference` of after minus before."""
+        values = (d.difference, d.variance, d.lower, d.upper)
+        undefined = not all(math.isfinite(v) for v in values)
+        return cls(
+            difference=finite_or_none(d.difference),
+            variance=finite_or_none(d.variance),
+            lower=finite_or_none(d.lower),
+            upper=finite_or_none(d.upper),
+            p_value=finite_or_none(d.p_value),
+            confidence=d.confidence,
+            reason=d.reason or (UNDEFINED if undefined else None),
+        )
+
+
 class AdaptationPoint(_Record):
     """Performance after fine-tuning on ``n_used`` local cases drawn with ``seed``."""
 
@@ -61,6 +105,9 @@ class AdaptationPoint(_Record):
     n_used: int = Field(ge=0, description="Cases trained on (whole patients, so may differ).")
     seed: int = Field(ge=0)
     after: Performance
+    change: AucChange | None = Field(
+        default=None, description="Paired DeLong AUC after − before; None when not trained."
+    )
 
 
 class AdaptationRelease(_Record):

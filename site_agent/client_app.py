@@ -17,7 +17,13 @@ from site_agent.disclosure import disclosure_mod
 from site_agent.exceptions import ProtocolError
 from site_agent.predictions import read_table
 from site_agent.protocol import StudyProtocol
-from site_agent.service import SITE_NAME_KEY, UNNAMED_SITE, SiteSettings, answer, declined_reply
+from site_agent.service import (
+    SITE_NAME_KEY,
+    UNNAMED_SITE,
+    SiteSettings,
+    answer_with_update,
+    declined_reply,
+)
 from site_agent.update_disclosure import (
     NUM_EXAMPLES,
     PROXIMAL_MU,
@@ -26,7 +32,13 @@ from site_agent.update_disclosure import (
     TRAIN_METRICS,
     read_train_request,
 )
-from site_agent.wire import SITE_ACTION, WEIGHTS_RECORD, decode_request, encode_reply
+from site_agent.wire import (
+    LOCAL_UPDATE_RECORD,
+    SITE_ACTION,
+    WEIGHTS_RECORD,
+    decode_request,
+    encode_reply,
+)
 
 SITE_MODS: list[Mod] = [disclosure_mod]
 """Mods applied to every message this app handles, outermost first."""
@@ -36,9 +48,14 @@ app = ClientApp(mods=SITE_MODS)
 
 @app.evaluate(SITE_ACTION)
 def evaluate(msg: Message, context: Context) -> Message:
-    """Answer an ``evaluate.sitepool`` request with this site's release or a decline."""
+    """Answer an ``evaluate.sitepool`` request with this site's release or a decline.
+
+    A fine_tune request that asks for the site-local update gets it beside the release in
+    :data:`~site_agent.wire.LOCAL_UPDATE_RECORD`; the disclosure mod decides whether it leaves.
+    """
     site = str(context.node_config.get(SITE_NAME_KEY, "")) or UNNAMED_SITE
     request_id = ""
+    update = None
     try:
         request, bundle = decode_request(msg.content)
         request_id = request.request_id
@@ -46,8 +63,13 @@ def evaluate(msg: Message, context: Context) -> Message:
     except Exception as exc:  # an unreadable request or configuration is declined, scrubbed
         reply = declined_reply(site[:80], request_id, exc)
     else:
-        reply = answer(request, bundle, settings, weights=sent_weights(msg.content))
-    return Message(encode_reply(reply), reply_to=msg)
+        reply, update = answer_with_update(
+            request, bundle, settings, weights=sent_weights(msg.content)
+        )
+    content = encode_reply(reply)
+    if update is not None:  # raw: the disclosure mod clips, noises, ledgers or refuses it
+        content[LOCAL_UPDATE_RECORD] = ArrayRecord({k: Array(v) for k, v in update.items()})
+    return Message(content, reply_to=msg)
 
 
 @app.train()

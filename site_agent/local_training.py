@@ -38,6 +38,7 @@ import torch
 from site_agent.adaptation_release import (
     AdaptationPoint,
     AdaptationRelease,
+    AucChange,
     Performance,
     ThresholdPerformance,
 )
@@ -46,7 +47,7 @@ from site_agent.model_bundle import ModelBundle, single_thread, standardise
 from site_agent.proportions import wilson
 from site_agent.protocol import AdaptationPlan
 from site_agent.release import AucRecord, EstimateRecord
-from site_agent.roc import delong
+from site_agent.roc import delong, paired_delong
 from site_agent.splits import IndexArray, grouped_subsample, grouped_train_test_split
 
 TrainingObserver = Callable[[npt.NDArray[np.str_]], None]
@@ -195,6 +196,30 @@ def fine_tune(
     return model
 
 
+def held_out_scores(model: torch.nn.Module, data: LocalData) -> npt.NDArray[np.float64]:
+    """Return the model's scores (probabilities) on the held-out test set, in row order."""
+    with single_thread(), torch.no_grad():
+        return torch.sigmoid(model(data.x[data.test])).numpy().astype(np.float64)
+
+
+def auc_change(
+    after: torch.nn.Module, before: torch.nn.Module, data: LocalData, confidence: float = 0.95
+) -> AucChange:
+    """Return the paired DeLong difference of AUCs, ``after − before``, on the test set.
+
+    References
+    ----------
+    DeLong ER, DeLong DM, Clarke-Pearson DL (1988). Biometrics 44:837-845, eqs. 5-6
+    (see :func:`site_agent.roc.paired_delong`).
+    """
+    labels = data.y[data.test].numpy().astype(np.int64)
+    # DeLong et al. (1988) eqs. 5-6: both models scored on the same held-out cases.
+    difference = paired_delong(
+        held_out_scores(after, data), held_out_scores(before, data), labels, confidence
+    )
+    return AucChange.of(difference)
+
+
 def performance(
     model: torch.nn.Module, data: LocalData, thresholds: Sequence[float], confidence: float = 0.95
 ) -> Performance:
@@ -209,8 +234,7 @@ def performance(
     :func:`site_agent.roc.delong`). Wilson EB (1927). JASA 22:209-212 (see
     :func:`site_agent.proportions.wilson`).
     """
-    with single_thread(), torch.no_grad():
-        scores = torch.sigmoid(model(data.x[data.test])).numpy().astype(np.float64)
+    scores = held_out_scores(model, data)
     labels = data.y[data.test].numpy().astype(np.int64)
     positive, negative = labels == 1, labels == 0
     rows = []
@@ -248,9 +272,10 @@ def adapt_site(
 
     A case count larger than the pool is skipped (it is not in the release). Repeat ``r``
     draws its cases with seed ``plan.seed + r`` by :func:`site_agent.splits.grouped_subsample`.
+    Each fine-tuned point carries the paired DeLong difference after − before
+    (:func:`auc_change`) on the same held-out cases.
     """
     before = performance(bundle.model, data, thresholds)
-    y_pool = data.y[data.pool].numpy().astype(np.int64)
     counts: list[int | None] = [n for n in plan.case_counts if n <= data.pool.size]
     if plan.include_all:
         counts.append(None)
@@ -261,29 +286,46 @@ def adapt_site(
             if requested == 0:
                 points.append(AdaptationPoint(n_requested=0, n_used=0, seed=seed, after=before))
                 continue
-            if requested is None:
-                rows = data.pool
-            else:
-                chosen = grouped_subsample(y_pool, data.patient_ids[data.pool], requested, seed)
-                rows = data.pool[chosen]
-            model = fine_tune(
-                copy.deepcopy(bundle.model),
-                data,
-                rows,
-                steps=plan.epochs,
-                learning_rate=plan.learning_rate,
-                l2_to_initial=plan.l2_to_initial,
-                observe=observe,
-            )
+            rows = _training_rows(data, requested, seed)
+            model = _adapted(bundle, data, rows, plan, observe)
             points.append(
                 AdaptationPoint(
                     n_requested=requested,
                     n_used=int(rows.size),
                     seed=seed,
                     after=performance(model, data, thresholds),
+                    change=auc_change(model, bundle.model, data),
                 )
             )
     return _release(data, site, protocol_hash, "bundle", before, tuple(points))
+
+
+def local_update(
+    data: LocalData,
+    bundle: ModelBundle,
+    plan: AdaptationPlan,
+    *,
+    observe: TrainingObserver | None = None,
+) -> State:
+    """Return the site-local update, fine-tuned minus initial weights, of the plan's last point.
+
+    The update is that of the grid's largest training set with the plan's first seed: the
+    whole pool when ``plan.include_all``, else the largest case count the pool holds. The
+    training is the grid's own (deterministic), so it is the model measured at that point.
+
+    Raises
+    ------
+    InputError
+        If the plan trains on no case at this site.
+    """
+    counts = [n for n in plan.case_counts if 0 < n <= data.pool.size]
+    if not plan.include_all and not counts:
+        raise InputError("the adaptation plan trains on no case at this site")
+    requested = None if plan.include_all else max(counts)
+    rows = _training_rows(data, requested, plan.seed)
+    initial = get_state(bundle.model)
+    adapted = get_state(_adapted(bundle, data, rows, plan, observe))
+    return {k: adapted[k] - initial[k] for k in initial}
 
 
 def evaluate_state(
@@ -320,6 +362,33 @@ def train_round(
         observe=observe,
     )
     return get_state(model), int(data.pool.size)
+
+
+def _training_rows(data: LocalData, requested: int | None, seed: int) -> IndexArray:
+    """Pool rows for one grid point: the whole pool (None) or ``requested`` cases by patient."""
+    if requested is None:
+        return data.pool
+    y_pool = data.y[data.pool].numpy().astype(np.int64)
+    chosen = grouped_subsample(y_pool, data.patient_ids[data.pool], requested, seed)
+    return data.pool[chosen]
+
+
+def _adapted(
+    bundle: ModelBundle,
+    data: LocalData,
+    rows: IndexArray,
+    plan: AdaptationPlan,
+    observe: TrainingObserver | None,
+) -> torch.nn.Module:
+    return fine_tune(
+        copy.deepcopy(bundle.model),
+        data,
+        rows,
+        steps=plan.epochs,
+        learning_rate=plan.learning_rate,
+        l2_to_initial=plan.l2_to_initial,
+        observe=observe,
+    )
 
 
 def _release(

@@ -16,6 +16,10 @@ Example (TOML)::
     enabled = true
     study_epsilon = 2.0
     release_epsilon = 0.5
+
+    [updates]                # weight updates (site-local or federated fine-tuning)
+    allowed = true
+    noise = { clipping_norm = 1.0, sensitivity = 1.0, epsilon = 0.5, delta = 1e-5 }
 """
 
 from __future__ import annotations
@@ -29,7 +33,7 @@ from typing import Any
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from site_agent.exceptions import InputError
-from site_agent.protocol import Operation
+from site_agent.protocol import Operation, UpdateNoise
 
 # Smallest count a site releases for any cell, bin or subgroup. Thresholds between 3 and
 # 11 are common practice in statistical disclosure control of health tables; 5 is a
@@ -82,6 +86,33 @@ class PrivacySettings(_Frozen):
         return self
 
 
+class UpdateRelease(_Frozen):
+    """Whether model weight updates may leave the site, and the noise put on them.
+
+    Off by default. ``allowed`` covers both kinds of update: the one a site-local
+    fine-tuning request asks for beside its metrics, and every reply to a federated round
+    (which *is* an update). Federated participation therefore needs ``fine_tune`` in
+    ``allowed_operations`` **and** ``allowed = true``; either one missing declines it.
+
+    ``noise``, when set, clips every released update to ``clipping_norm`` in L2 norm and
+    adds Gaussian noise of standard deviation ``sensitivity · √(2 ln(1.25/δ)) / ε``
+    (Flower's ``LocalDpMod``); it takes precedence over the protocol's ``update_noise``.
+    Each noisy update charges ``epsilon`` to the study's budget at the site
+    (``privacy.study_epsilon``), whether or not noise on counts is on.
+    """
+
+    allowed: bool = Field(default=False, description="Let weight updates leave the site.")
+    noise: UpdateNoise | None = Field(
+        default=None, description="Clipping and Gaussian noise on every released update."
+    )
+
+    @model_validator(mode="after")
+    def _noise_is_noise(self) -> UpdateRelease:
+        if self.noise is not None and self.noise.sensitivity <= 0:
+            raise ValueError("update noise needs a positive sensitivity")
+        return self
+
+
 class SitePolicy(_Frozen):
     """A hospital's disclosure policy; every reply from the site is checked against it."""
 
@@ -108,6 +139,7 @@ class SitePolicy(_Frozen):
         ),
     )
     privacy: PrivacySettings = Field(default_factory=PrivacySettings)
+    updates: UpdateRelease = Field(default_factory=UpdateRelease)
     approvals_file: Path = Field(
         default=DEFAULT_APPROVALS_FILE,
         description="The site's approvals file; a relative path is read beside the policy file.",

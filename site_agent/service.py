@@ -111,23 +111,42 @@ def answer(
     plan's grid, or, when ``weights`` came with the request, measuring those weights.
     Never raises: any error becomes a ``declined`` reply (see :func:`declined_reply`).
     """
+    return answer_with_update(request, bundle, settings, weights)[0]
+
+
+def answer_with_update(
+    request: SiteRequest,
+    bundle: bytes | None,
+    settings: SiteSettings,
+    weights: Mapping[str, np.ndarray] | None = None,
+) -> tuple[SiteReply, dict[str, np.ndarray] | None]:
+    """Like :func:`answer`, and also the site-local update when the request asks for one.
+
+    The update (fine-tuned minus initial weights, :func:`site_agent.local_training.local_update`)
+    is returned raw: whether and how it may leave is the disclosure gate's decision.
+    Never raises; a declined reply comes with no update.
+    """
+    update: dict[str, np.ndarray] | None = None
     try:
         if request.operation is Operation.FINE_TUNE:
-            return SiteReply(
+            adaptation, update = _fine_tune(request, bundle, settings, weights)
+            reply = SiteReply(
                 site=settings.site,
                 request_id=request.request_id,
                 status=ReplyStatus.RELEASED,
-                adaptation=_fine_tune(request, bundle, settings, weights),
+                adaptation=adaptation,
             )
+            return reply, update
         release = _evaluate(request, bundle, settings)
     except Exception as exc:  # every failure must become a scrubbed decline
-        return declined_reply(settings.site, request.request_id, exc)
-    return SiteReply(
+        return declined_reply(settings.site, request.request_id, exc), None
+    reply = SiteReply(
         site=settings.site,
         request_id=request.request_id,
         status=ReplyStatus.RELEASED,
         release=release,
     )
+    return reply, None
 
 
 def declined_reply(site: str, request_id: str, exc: BaseException) -> SiteReply:
@@ -174,22 +193,24 @@ def _fine_tune(
     bundle: bytes | None,
     settings: SiteSettings,
     weights: Mapping[str, np.ndarray] | None,
-) -> AdaptationRelease:
+) -> tuple[AdaptationRelease, dict[str, np.ndarray] | None]:
     """Fine-tune on the protocol's grid, or measure the weights sent; test set only."""
     protocol = _checked_protocol(request)
     if protocol.model is None or protocol.adaptation is None:
         raise ProtocolError("fine_tune needs a protocol that names a model and an adaptation plan")
     if bundle is None:
         raise BundleError("a fine_tune request came without the model bundle")
+    if request.return_update and weights is not None:
+        raise ProtocolError("an update is returned by site-local fine-tuning only, not with weights")
     # Imported here: torch costs seconds to import, and sites with scores never need it.
-    from site_agent.local_training import adapt_site, evaluate_state, local_data
+    from site_agent.local_training import adapt_site, evaluate_state, local_data, local_update
     from site_agent.model_bundle import load_bundle
 
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
     data = local_data(read_table(settings.data_path), model, protocol.adaptation)
     thresholds = protocol.evaluation.thresholds
     if weights is not None:
-        return evaluate_state(
+        measured = evaluate_state(
             data,
             model,
             weights,
@@ -197,7 +218,8 @@ def _fine_tune(
             site=settings.site,
             protocol_hash=request.protocol_hash,
         )
-    return adapt_site(
+        return measured, None
+    release = adapt_site(
         data,
         model,
         protocol.adaptation,
@@ -205,6 +227,8 @@ def _fine_tune(
         site=settings.site,
         protocol_hash=request.protocol_hash,
     )
+    update = dict(local_update(data, model, protocol.adaptation)) if request.return_update else None
+    return release, update
 
 
 def window_predictions(predictions: Predictions, window: TimeWindow) -> Predictions:

@@ -6,6 +6,9 @@ and a request id; the model bundle's bytes travel beside it in the same Flower m
 A reply carries the site's name, the request id it answers, a status of our own
 (:class:`ReplyStatus`) and either the site's aggregate :class:`~site_agent.release.SiteRelease`
 or a scrubbed reason for declining. Nothing row-level is representable in either model.
+A site-local fine_tune reply may carry one more record, :data:`LOCAL_UPDATE_RECORD` (an
+``ArrayRecord`` shaped like the model's weights), only when the request asked for it and the
+site's policy allows updates (:mod:`site_agent.disclosure` enforces both).
 
 In a Flower message the pydantic JSON travels as one string value of a ``ConfigRecord``
 (and the bundle as a bytes value of another), so Flower's own serialisation checks every
@@ -36,6 +39,8 @@ REPLY_RECORD = "sitepool.reply"
 BUNDLE_RECORD = "sitepool.bundle"
 WEIGHTS_RECORD = "sitepool.weights"
 """ArrayRecord of model weights sent with a fine_tune request (e.g. a federated model)."""
+LOCAL_UPDATE_RECORD = "sitepool.local-update"
+"""ArrayRecord beside a fine_tune reply: the site-local update (fine-tuned minus initial)."""
 _JSON_KEY = "json"
 _BUNDLE_KEY = "bundle"
 
@@ -79,6 +84,13 @@ class SiteRequest(_Wire):
     request_id: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9._-]+$")
     window: TimeWindow | None = Field(
         default=None, description="Evaluate only cases acquired in this window (monitoring)."
+    )
+    return_update: bool = Field(
+        default=False,
+        description=(
+            "fine_tune only: also return the site-local weight update beside the metrics "
+            "(released only if the site's policy allows updates)."
+        ),
     )
 
 
