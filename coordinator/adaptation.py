@@ -3,7 +3,10 @@
 :func:`request_adaptation` sends every site one ``fine_tune`` request; the protocol's
 :class:`~site_agent.protocol.AdaptationPlan` is the whole grid (case counts x seeds), so
 one message per site suffices. Sent with weights (a federated model), the same request
-asks the site only to measure those weights on its held-out test set.
+asks the site only to measure those weights on its held-out test set. With
+``return_update`` the request also asks for each site's site-local update (fine-tuned minus
+initial weights), which a site returns only if its policy allows updates
+(:class:`LocalUpdate`; a site that does not allow it declines the whole request).
 
 :func:`adaptation_rows` summarises the releases:
 
@@ -14,6 +17,9 @@ asks the site only to measure those weights on its held-out test set.
 - pooled across sites, the *mean of the sites' logit estimates* with every site weighted
   equally; its interval treats the sites as fixed (it describes these sites, not a new
   one; the random-effects analysis of the evaluation round speaks to new sites);
+- per site and case count, the paired DeLong change of AUC (after − before, on the same
+  held-out cases) combined over the seeds by Rubin's rules on its own scale
+  (:func:`combine_differences`; rows with metric :data:`AUC_CHANGE`, not pooled);
 - per site, the smallest case count whose combined AUC comes within the plan's margin of
   the development site's AUC (:func:`adequate_cases`, judged on the point estimate).
 
@@ -40,14 +46,16 @@ from pydantic import BaseModel, ConfigDict, Field
 from scipy import stats
 
 from coordinator.study_results import AdaptationRow, AdequateCases
-from site_agent.adaptation_release import AdaptationRelease, Performance
+from site_agent.adaptation_release import AdaptationPoint, AdaptationRelease, Performance
 from site_agent.estimates import two_sided_z
 from site_agent.exceptions import DeploymentError, InputError, ProtocolError
 from site_agent.protocol import Operation, StudyProtocol
 from site_agent.release import AucRecord
 from site_agent.roc import hanley_mcneil_se
+from site_agent.update_disclosure import update_digest, update_norm
 from site_agent.wire import (
     EVALUATE_MESSAGE_TYPE,
+    LOCAL_UPDATE_RECORD,
     WEIGHTS_RECORD,
     ReplyStatus,
     SiteRequest,
@@ -59,6 +67,8 @@ POOLED = "pooled"
 WHOLE_POOL = "all"
 """Label of the whole training pool among the case counts."""
 METRICS = ("auc", "sensitivity", "specificity")
+AUC_CHANGE = "auc_change"
+"""Metric name of the rows holding the paired DeLong AUC change after − before."""
 MAX_REASON_CHARS = 200
 
 
@@ -74,6 +84,22 @@ class AdaptationDecline(_Record):
     reason: str
 
 
+class LocalUpdate(_Record):
+    """A site-local update as the site released it (clipped and noised if its policy says)."""
+
+    sha256: str = Field(description="SHA-256 of names and bytes, as in the site's ledger.")
+    l2_norm: float = Field(description="L2 norm over all arrays, as in the site's ledger.")
+    shapes: dict[str, list[int]]
+    weights: dict[str, list[float]] = Field(description="The update, flattened, by name.")
+
+    def arrays(self) -> dict[str, npt.NDArray[np.float32]]:
+        """Return the update as float32 arrays of their shapes."""
+        return {
+            k: np.asarray(v, dtype=np.float32).reshape(self.shapes[k])
+            for k, v in self.weights.items()
+        }
+
+
 class AdaptationRound(_Record):
     """What one round of ``fine_tune`` requests produced."""
 
@@ -81,6 +107,9 @@ class AdaptationRound(_Record):
     releases: dict[str, AdaptationRelease]
     node_of_site: dict[str, int]
     declines: list[AdaptationDecline] = Field(default_factory=list)
+    updates: dict[str, LocalUpdate] = Field(
+        default_factory=dict, description="Site-local updates, when they were asked for."
+    )
 
 
 def request_adaptation(
@@ -90,8 +119,12 @@ def request_adaptation(
     *,
     weights: Mapping[str, npt.NDArray[np.floating]] | None = None,
     quorum: int | None = None,
+    return_update: bool = False,
 ) -> AdaptationRound:
     """Send every connected node one ``fine_tune`` request and collect the releases.
+
+    With ``return_update`` (not with ``weights``) each site is also asked for its
+    site-local update; a release that comes without one counts as a decline.
 
     Raises
     ------
@@ -112,6 +145,7 @@ def request_adaptation(
             protocol_hash=protocol_hash,
             round_number=1,
             request_id=uuid.uuid4().hex,
+            return_update=return_update,
         )
         requests[node_id] = request
         content = encode_request(request, bundle)
@@ -121,7 +155,7 @@ def request_adaptation(
             )
         messages.append(Message(content, node_id, EVALUATE_MESSAGE_TYPE, group_id="fine-tune"))
     replies = grid.send_and_receive(messages, timeout=protocol.reply_timeout_s)
-    outcome = _sorted(replies, requests, "sent" if weights is not None else "bundle")
+    outcome = _sorted(replies, requests, "sent" if weights is not None else "bundle", return_update)
     needed = protocol.quorum if quorum is None else quorum
     if len(outcome.releases) < needed:
         raise DeploymentError(
@@ -132,9 +166,13 @@ def request_adaptation(
 
 
 def _sorted(
-    replies: Iterable[Message], requests: Mapping[int, SiteRequest], weights: str
+    replies: Iterable[Message],
+    requests: Mapping[int, SiteRequest],
+    weights: str,
+    return_update: bool = False,
 ) -> AdaptationRound:
     releases: dict[str, AdaptationRelease] = {}
+    updates: dict[str, LocalUpdate] = {}
     node_of_site: dict[str, int] = {}
     declines: list[AdaptationDecline] = []
     answered: set[int] = set()
@@ -163,8 +201,15 @@ def _sorted(
             declines.append(AdaptationDecline(node_id=node_id, reason="inconsistent reply"))
             continue
         node_of_site[answer.site] = node_id
-        if answer.status is ReplyStatus.RELEASED and release is not None:
+        arrays = reply.content.array_records.get(LOCAL_UPDATE_RECORD)
+        if answer.status is ReplyStatus.RELEASED and return_update and arrays is None:
+            declines.append(
+                AdaptationDecline(node_id=node_id, site=answer.site, reason="no update returned")
+            )
+        elif answer.status is ReplyStatus.RELEASED and release is not None:
             releases[answer.site] = release
+            if return_update and arrays is not None:
+                updates[answer.site] = _local_update(arrays)
         else:
             declines.append(
                 AdaptationDecline(node_id=node_id, site=answer.site, reason=answer.reason or "")
@@ -178,6 +223,16 @@ def _sorted(
         releases=dict(sorted(releases.items())),
         node_of_site=dict(sorted(node_of_site.items())),
         declines=declines,
+        updates=dict(sorted(updates.items())),
+    )
+
+
+def _local_update(arrays: ArrayRecord) -> LocalUpdate:
+    return LocalUpdate(
+        sha256=update_digest(arrays),
+        l2_norm=update_norm(arrays),
+        shapes={k: list(v.shape) for k, v in arrays.items()},
+        weights={k: [float(x) for x in v.numpy().ravel()] for k, v in arrays.items()},
     )
 
 
@@ -222,14 +277,48 @@ def combine_over_seeds(
     D.B. Rubin (1987). Multiple imputation for nonresponse in surveys. Wiley. Section 3.1,
     equations (3.1.2)-(3.1.6) and the degrees of freedom of Section 3.3.
     """
-    q = np.asarray(logits, dtype=float)
+    pooled = _rubin(logits, variances, confidence)
+    if pooled is None:
+        nan = math.nan
+        return Combined(nan, nan, nan, nan, nan, nan, 0, "no seed gave a defined estimate")
+    q_bar, total, df, half, m = pooled
+    return Combined(_expit(q_bar), _expit(q_bar - half), _expit(q_bar + half), q_bar, total, df, m)
+
+
+def combine_differences(
+    differences: Sequence[float], variances: Sequence[float], confidence: float = 0.95
+) -> Combined:
+    """Combine per-seed AUC differences (after − before) with Rubin's rules on their scale.
+
+    The same rules as :func:`combine_over_seeds`, without a transformation: a difference of
+    AUCs lies in [−1, 1] and its paired DeLong variance is on that scale. ``logit`` holds
+    the combined difference itself.
+
+    References
+    ----------
+    D.B. Rubin (1987). Multiple imputation for nonresponse in surveys. Wiley. Section 3.1,
+    equations (3.1.2)-(3.1.6) and Section 3.3. DeLong ER, DeLong DM, Clarke-Pearson DL
+    (1988). Biometrics 44:837-845 (the per-seed variances).
+    """
+    pooled = _rubin(differences, variances, confidence)
+    if pooled is None:
+        nan = math.nan
+        return Combined(nan, nan, nan, nan, nan, nan, 0, "no seed gave a defined difference")
+    q_bar, total, df, half, m = pooled
+    return Combined(q_bar, q_bar - half, q_bar + half, q_bar, total, df, m)
+
+
+def _rubin(
+    estimates: Sequence[float], variances: Sequence[float], confidence: float
+) -> tuple[float, float, float, float, int] | None:
+    """Return ``q̄, T, df``, the interval's half-width and ``m``; None without finite input."""
+    q = np.asarray(estimates, dtype=float)
     u = np.asarray(variances, dtype=float)
     keep = np.isfinite(q) & np.isfinite(u)
     q, u = q[keep], u[keep]
     m = int(q.size)
     if m == 0:
-        nan = math.nan
-        return Combined(nan, nan, nan, nan, nan, nan, 0, "no seed gave a defined estimate")
+        return None
     q_bar = float(q.mean())
     within = float(u.mean())
     between = float(q.var(ddof=1)) if m > 1 else 0.0
@@ -240,8 +329,7 @@ def combine_over_seeds(
     else:
         df = math.inf
         quantile = two_sided_z(confidence)
-    half = quantile * math.sqrt(total)
-    return Combined(_expit(q_bar), _expit(q_bar - half), _expit(q_bar + half), q_bar, total, df, m)
+    return q_bar, total, df, quantile * math.sqrt(total), m
 
 
 def combine_over_sites(combined: Sequence[Combined], confidence: float = 0.95) -> Combined:
@@ -354,7 +442,41 @@ def site_rows(
                     reason=c.reason,
                 )
             )
+    for n in counts:
+        points = [p for p in release.points if p.n_requested == n and p.change is not None]
+        if points:
+            rows.append(_change_row(release.site, n, points, confidence))
     return rows, combined
+
+
+def _change_row(
+    site: str, n: int | None, points: Sequence[AdaptationPoint], confidence: float
+) -> AdaptationRow:
+    """Combine the seeds' paired DeLong changes (after − before) of one case count."""
+    values = [
+        (p.change.difference, p.change.variance)
+        if p.change is not None and p.change.difference is not None
+        else (math.nan, math.nan)
+        for p in points
+    ]
+    d = [math.nan if v is None else v for v, _ in values]
+    u = [math.nan if v is None else v for _, v in values]
+    c = combine_differences(d, u, confidence)
+    raw = [x for x in d if math.isfinite(x)]
+    return AdaptationRow(
+        site=site,
+        metric=AUC_CHANGE,
+        n_cases=n,
+        n_used=float(np.mean([p.n_used for p in points])),
+        estimate=c.estimate,
+        lower=c.lower,
+        upper=c.upper,
+        seed_min=min(raw) if raw else math.nan,
+        seed_max=max(raw) if raw else math.nan,
+        repeats=len(points),
+        method="rubin-paired-delong",
+        reason=c.reason,
+    )
 
 
 def _metric_keys(thresholds: Sequence[float]) -> list[tuple[str, float | None]]:

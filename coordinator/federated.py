@@ -14,8 +14,25 @@ Each train message carries the protocol's request and the model bundle in the st
 ``train_config``; FedProx adds ``proximal-mu``. After the last round every site measures
 the federated weights on its held-out test set (:func:`coordinator.adaptation.request_adaptation`).
 
-Secure aggregation (SecAgg+) is not used: in Flower 1.42 it exists only in the legacy
-workflow stack, which these Message API strategies do not run on.
+Whether a site takes part is its policy's decision: it needs ``fine_tune`` in
+``allowed_operations`` and ``updates.allowed`` (a federated reply is a weight update);
+clipping and Gaussian noise on its update (Flower's ``LocalDpMod``) come from its policy's
+``updates.noise``, else the protocol's ``update_noise``, and are charged to the study's
+epsilon budget in its ledger (:mod:`site_agent.update_disclosure`).
+
+Secure aggregation (SecAgg+) is not used, and this module cannot use it as built. In
+Flower 1.42 SecAgg+ exists only in the legacy stack: ``flwr.server.workflow.
+SecAggPlusWorkflow`` raises ``TypeError`` unless it is given a ``LegacyContext`` (a legacy
+``flwr.server.strategy`` strategy with ``Parameters`` state), so it cannot wrap the
+``flwr.serverapp.strategy`` FedAvg/FedProx used here; and ``flwr.client.mod.secaggplus_mod``
+reads the site's reply as a legacy ``FitRes`` (``recorddict_to_fitres``), not the
+``arrays``/``metrics`` records our train handler and disclosure gate exchange. Running it
+would need a second, legacy federated path (legacy strategy, ``DefaultWorkflow`` with
+SecAgg+ as its fit workflow, a FitIns/FitRes train handler), and the site's gate would then
+see only masked vectors: it could no longer ledger the hash and L2 norm of the update it
+releases, and the clipping and noise would have to run inside the masking mod. Until that
+is built and tested, the coordinator sees each site's (clipped, noised if so configured)
+update in the clear.
 
 References
 ----------

@@ -10,7 +10,9 @@ site, the one the site's split (seeded by the plan) sets aside.
 :func:`add_fine_tuning` carries the outcome into the study results: the adaptation curves
 (:func:`coordinator.adaptation.adaptation_rows`), the smallest adequate case counts and the
 reference lines per site (no adaptation, site-local, federated and, in simulation only,
-centralized training on the pooled data), with plain-language findings.
+centralized training on the pooled data), with plain-language findings: for every
+degraded site, the paired DeLong change of AUC that local adaptation brought
+(:func:`change_findings`).
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from flwr.serverapp import Grid
 from pydantic import BaseModel, ConfigDict
 
 from coordinator.adaptation import (
+    AUC_CHANGE,
     POOLED,
     AdaptationRound,
     adaptation_rows,
@@ -104,7 +107,11 @@ def add_fine_tuning(
     reference = reference_auc(results)
     adequate = adequate_cases(rows, reference, plan.margin)
     lines = _reference_lines(rows, outcome, centralized or {})
-    findings = [*results.findings, *_findings(lines, adequate, reference, plan.margin)]
+    findings = [
+        *results.findings,
+        *_findings(lines, adequate, reference, plan.margin),
+        *change_findings(rows, lines, reference, plan.margin),
+    ]
     return results.model_copy(
         update={
             "adaptation": rows,
@@ -158,6 +165,44 @@ def _reference_lines(
         if site in centralized:
             lines.append(_auc_line(site, "centralized", centralized[site]))
     return lines
+
+
+def degraded_sites(lines: list[ReferenceLine], reference: float, margin: float) -> list[str]:
+    """Return the sites whose AUC without adaptation is below ``reference − margin``.
+
+    Without a defined reference AUC, every site with a defined AUC counts.
+    """
+    out = []
+    for row in lines:
+        if row.line != "none" or not math.isfinite(row.estimate):
+            continue
+        if not math.isfinite(reference) or row.estimate < reference - margin:
+            out.append(row.site)
+    return sorted(out)
+
+
+def change_findings(
+    rows: list[AdaptationRow], lines: list[ReferenceLine], reference: float, margin: float
+) -> list[str]:
+    """Return one finding per degraded site: the AUC change local adaptation brought.
+
+    The change is that of the site-local line's case count (the whole pool when the plan
+    includes it, else the largest count): the paired DeLong difference after − before on
+    the site's held-out test set, combined over seeds by Rubin's rules.
+    """
+    out = []
+    for site in degraded_sites(lines, reference, margin):
+        changes = [r for r in rows if r.site == site and r.metric == AUC_CHANGE]
+        if not changes or not math.isfinite(changes[-1].estimate):
+            continue
+        row = changes[-1]
+        verb = "raised" if row.estimate >= 0 else "lowered"
+        out.append(
+            f"Local adaptation {verb} AUC at {site} by {abs(row.estimate):.3f} "
+            f"(95% CI {row.lower:+.3f} to {row.upper:+.3f}; paired DeLong on its held-out "
+            f"test set, n = {count_label(row.n_cases)} local cases, {row.repeats} seeds)."
+        )
+    return out
 
 
 def _ci(row: ReferenceLine) -> str:

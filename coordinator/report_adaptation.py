@@ -3,7 +3,8 @@
 Two figures and two tables, rendered from :class:`~coordinator.study_results.StudyResults`
 only: AUC against the number of local training cases (mean over seeds with its Rubin
 interval, one panel per site, the development site's AUC minus the margin as a dashed
-line), and per site the AUC with no adaptation, site-local and federated fine-tuning and
+line), a table of the paired DeLong change of AUC after − before per site and case count,
+and per site the AUC with no adaptation, site-local and federated fine-tuning and
 centralized training on the pooled data (simulation only), each with its interval.
 An empty string when the study had no fine-tuning stage.
 """
@@ -15,7 +16,7 @@ import math
 
 import matplotlib.pyplot as plt
 
-from coordinator.adaptation import POOLED, count_label
+from coordinator.adaptation import AUC_CHANGE, POOLED, count_label
 from coordinator.report_plots import colour, svg
 from coordinator.study_results import AdaptationRow, StudyResults
 
@@ -44,7 +45,9 @@ def _positions(rows: list[AdaptationRow]) -> tuple[list[float], list[str]]:
 
 def adaptation_curves_svg(results: StudyResults) -> str:
     """Return one panel per site (and pooled): AUC vs local cases, with intervals."""
-    sites = sorted({r.site for r in results.adaptation}, key=lambda s: (s == POOLED, s))
+    sites = sorted(
+        {r.site for r in results.adaptation if r.metric == "auc"}, key=lambda s: (s == POOLED, s)
+    )
     margin = results.adequate_cases[0] if results.adequate_cases else None
     columns = min(3, len(sites))
     rows_n = math.ceil(len(sites) / columns)
@@ -124,6 +127,22 @@ def adaptation_section(results: StudyResults) -> str:
     ]
     if results.adaptation:
         parts.append(f"<figure>{adaptation_curves_svg(results)}</figure>")
+    changes = [r for r in results.adaptation if r.metric == AUC_CHANGE]
+    if changes:
+        rows = "".join(
+            f"<tr><td>{_e(r.site)}</td><td>{_e(count_label(r.n_cases))}</td>"
+            f"<td>{_signed(r.estimate)}</td><td>{_signed(r.lower)} to {_signed(r.upper)}</td>"
+            f"<td>{r.repeats}</td><td>{_e(r.reason or '')}</td></tr>"
+            for r in changes
+        )
+        parts.append(
+            "<p>Change of AUC after local fine-tuning, after − before, on the same held-out "
+            "cases: the paired DeLong difference at each seed, combined over seeds by "
+            "Rubin's rules.</p>"
+            "<table><thead><tr><th>site</th><th>local training cases</th><th>AUC change</th>"
+            "<th>95% CI</th><th>seeds</th><th>note</th></tr></thead>"
+            f"<tbody>{rows}</tbody></table>"
+        )
     if results.adequate_cases:
         rows = "".join(
             f"<tr><td>{_e(a.site)}</td><td>{_e(_adequate(a.n_cases, a.whole_pool))}</td>"
@@ -147,6 +166,10 @@ def adaptation_section(results: StudyResults) -> str:
             f"<th>95% CI</th><th>method</th></tr></thead><tbody>{rows}</tbody></table>"
         )
     return "".join(parts)
+
+
+def _signed(value: float) -> str:
+    return "–" if not math.isfinite(value) else f"{value:+.3f}"
 
 
 def _adequate(n: int | None, whole_pool: bool) -> str:

@@ -36,7 +36,7 @@ from simulations.scenario import Scenario
 from simulations.sites import SyntheticSite, build_sites, development_split
 from site_agent.approvals import approve
 from site_agent.model_bundle import save_bundle
-from site_agent.policy import SitePolicy, SmallCellAction
+from site_agent.policy import SitePolicy, SmallCellAction, UpdateRelease
 from site_agent.protocol import (
     AdaptationPlan,
     EvaluationPlan,
@@ -223,6 +223,8 @@ def _prepare_sites(
         small_cells=SmallCellAction.MERGE,
         allowed_subgroup_attributes=DEFAULT_SUBGROUPS,
         allowed_operations=protocol.operations,
+        # Federated rounds release weight updates: the rehearsal's invented sites allow them.
+        updates=UpdateRelease(allowed=Operation.FINE_TUNE in protocol.operations),
     )
     for site in sites:
         home = directory / site.spec.slug

@@ -5,9 +5,10 @@ held-out local test set before any fine-tuning (``before``) and after fine-tunin
 requested number of local training cases and seed (``points``): the DeLong AUC with its
 interval, and at each protocol threshold the confusion counts with Wilson intervals for
 sensitivity and specificity; and for each fine-tuned point the paired DeLong difference
-``after − before`` with its variance, both AUCs measured on the same held-out cases. Besides these it carries only sizes (training pool, test set,
-cases actually used). Every list is bounded by the protocol's grid and thresholds, so no
-per-case value has a place to go.
+``after − before`` with its variance, both AUCs measured on the same held-out cases.
+Besides these it carries only sizes (training pool, test set, cases actually used). Every
+list is bounded by the protocol's grid and thresholds, so no per-case value has a place
+to go.
 
 :func:`control_adaptation` applies the site's minimum cell size: it refuses a release
 whose test-set totals are small and suppresses small confusion cells (their counts become

@@ -31,6 +31,10 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
 7. Attribute counts (case mix of a monitoring window): small levels are pooled under one
    level name, with secondary pooling until the pooled count is 0 or at least ``m``; the
    counts are withheld when pending cases are (they include them).
+8. Weight updates (a site-local update asked for beside fine-tuning metrics, and every
+   federated reply) leave only when the policy's ``updates.allowed`` is on; otherwise the
+   request is refused before any data is read. Clipping and noise on updates, their
+   epsilon charge and their ledger record are in :mod:`site_agent.update_disclosure`.
 
 Limits, said plainly
 --------------------
@@ -61,7 +65,7 @@ from site_agent.exceptions import DisclosureRefused
 from site_agent.ledger import LedgerSession, Outcome, ReleaseLedger
 from site_agent.policy import SitePolicy, SmallCellAction
 from site_agent.privacy_budget import check_budget, noised_release
-from site_agent.protocol import StudyProtocol
+from site_agent.protocol import Operation, StudyProtocol
 from site_agent.release import POOLED_LEVELS, AttributeCounts, SiteRelease
 from site_agent.service import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY, UNNAMED_SITE
 from site_agent.summaries import (
@@ -73,6 +77,7 @@ from site_agent.summaries import (
     SufficientStatistics,
 )
 from site_agent.wire import (
+    LOCAL_UPDATE_RECORD,
     ReplyStatus,
     SiteReply,
     SiteRequest,
@@ -113,9 +118,11 @@ class RefusalCode(StrEnum):
     SITE_ERROR = "site_error"
     WINDOW_WITHOUT_CASES = "window_without_cases"
     NOT_COVERED_BY_PRIVACY = "not_covered_by_privacy"
+    UPDATE_NOT_ALLOWED = "update_release_not_allowed"
 
 
 REFUSAL_TEXT: Mapping[RefusalCode, str] = {
+    RefusalCode.UPDATE_NOT_ALLOWED: "the site's policy does not let weight updates leave",
     RefusalCode.NOT_COVERED_BY_PRIVACY: (
         "the site's differential privacy does not cover this output, so it is not released"
     ),
@@ -189,7 +196,8 @@ def check_request(
     ------
     DisclosureRefused
         For a coordinator not allowed, an unapproved or changed protocol, an operation
-        or a subgroup attribute the policy does not allow.
+        or a subgroup attribute the policy does not allow, or a request for a weight
+        update the policy does not let leave (``updates.allowed``).
     """
     operation = request.operation.value
     if policy.allowed_coordinators and coordinator not in policy.allowed_coordinators:
@@ -208,6 +216,10 @@ def check_request(
         raise _refuse(RefusalCode.PROTOCOL_NOT_APPROVED, operation)
     if request.operation not in policy.allowed_operations:
         raise _refuse(RefusalCode.OPERATION_NOT_ALLOWED, operation)
+    if request.return_update and request.operation is not Operation.FINE_TUNE:
+        raise _refuse(RefusalCode.PROTOCOL_INVALID, operation)
+    if request.return_update and not policy.updates.allowed:
+        raise _refuse(RefusalCode.UPDATE_NOT_ALLOWED, operation)
     if any(a not in policy.allowed_subgroup_attributes for a in protocol.evaluation.subgroups):
         raise _refuse(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED, operation)
     mix = protocol.monitoring.mix_attributes if protocol.monitoring is not None else ()
@@ -605,7 +617,7 @@ def disclosure_mod(
         ):
             raise _refuse(_ERROR_CODES.get(answered.error_class or "", RefusalCode.SITE_ERROR))
         if answered.adaptation is not None:
-            return _released_adaptation(msg, answered, policy, ledger, request, study_id)
+            return _released_adaptation(msg, reply, answered, policy, ledger, request, protocol)
         return _released(msg, answered, policy, ledger, request, study_id)
     except Exception as exc:  # every failure is declined with a fixed reason code only
         code = _code_of(exc)
@@ -677,14 +689,26 @@ def _released(
 
 def _released_adaptation(
     msg: Message,
+    reply: Message,
     answered: SiteReply,
     policy: SitePolicy,
     ledger: ReleaseLedger,
     request: SiteRequest,
-    study_id: str,
+    protocol: StudyProtocol,
 ) -> Message:
-    """Release a fine_tune reply under the minimum cell size; ledger it (no DP covers it)."""
+    """Release a fine_tune reply under the minimum cell size; ledger it.
+
+    No differential privacy covers the metrics, so a site with noise on counts refuses.
+    When the request asked for the site-local update (``check_request`` has made sure the
+    policy allows it), the update is clipped and noised if the policy or protocol says so
+    (:func:`site_agent.update_disclosure.released_local_update`), charged to the study's
+    epsilon budget, and ledgered by its SHA-256 and L2 norm, never by its values.
+    """
+    # Imported here: that module builds on this one.
+    from site_agent.update_disclosure import charge_update, released_local_update
+
     assert answered.adaptation is not None  # checked by the caller
+    study_id = protocol.study_id
     if policy.privacy.enabled:
         raise _refuse(RefusalCode.NOT_COVERED_BY_PRIVACY, request.operation.value)
     adaptation, suppressed = control_adaptation(answered.adaptation, policy)
@@ -695,13 +719,26 @@ def _released_adaptation(
     out = SiteReply.model_validate(out.model_dump())
     content = encode_reply(out)
     note_json = note.model_dump_json()
-    entry = ledger.append(
-        outcome=Outcome.RELEASED,
-        study_id=study_id,
-        protocol_hash=request.protocol_hash,
-        operation=request.operation.value,
-        released={"reply": json.loads(out.model_dump_json()), "disclosure": json.loads(note_json)},
-    )
+    released: dict[str, Any] = {
+        "reply": json.loads(out.model_dump_json()),
+        "disclosure": json.loads(note_json),
+    }
+    update, noise = None, None
+    if request.return_update:
+        update, summary, noise = released_local_update(reply.content, policy, protocol)
+        released["update"] = summary
+    with ledger.session() as session:
+        epsilon = charge_update(session, study_id, noise, policy) if update is not None else 0.0
+        entry = session.append(
+            outcome=Outcome.RELEASED,
+            study_id=study_id,
+            protocol_hash=request.protocol_hash,
+            operation=request.operation.value,
+            released=released,
+            epsilon_spent=epsilon,
+        )
+    if update is not None:
+        content[LOCAL_UPDATE_RECORD] = update
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )

@@ -201,7 +201,7 @@ def _fine_tune(
     if bundle is None:
         raise BundleError("a fine_tune request came without the model bundle")
     if request.return_update and weights is not None:
-        raise ProtocolError("an update is returned by site-local fine-tuning only, not with weights")
+        raise ProtocolError("only site-local fine-tuning returns an update, not sent weights")
     # Imported here: torch costs seconds to import, and sites with scores never need it.
     from site_agent.local_training import adapt_site, evaluate_state, local_data, local_update
     from site_agent.model_bundle import load_bundle

@@ -14,14 +14,22 @@ import pytest
 from scipy import stats
 
 from coordinator.adaptation import (
+    AUC_CHANGE,
     adaptation_rows,
     adequate_cases,
     auc_logit,
+    combine_differences,
     combine_over_seeds,
     combine_over_sites,
 )
-from coordinator.study_results import AdaptationRow
-from site_agent.adaptation_release import AdaptationPoint, AdaptationRelease, Performance
+from coordinator.fine_tuning import change_findings
+from coordinator.study_results import AdaptationRow, ReferenceLine
+from site_agent.adaptation_release import (
+    AdaptationPoint,
+    AdaptationRelease,
+    AucChange,
+    Performance,
+)
 from site_agent.release import AucRecord
 
 
@@ -161,3 +169,86 @@ def test_combine_over_sites_without_defined_sites_is_nan_with_reason() -> None:
     pooled = combine_over_sites([empty])
 
     assert math.isnan(pooled.estimate) and pooled.reason
+
+
+def _with_changes(
+    release: AdaptationRelease, changes: list[tuple[float, float]]
+) -> AdaptationRelease:
+    """Attach (difference, variance) pairs to the release's fine-tuned points, in order."""
+    trained = [i for i, p in enumerate(release.points) if p.n_requested != 0]
+    points = list(release.points)
+    for i, (d, v) in zip(trained, changes, strict=True):
+        half = 1.959963984540054 * math.sqrt(v)  # normal 97.5% quantile (scipy.stats.norm.ppf)
+        points[i] = points[i].model_copy(
+            update={
+                "change": AucChange(
+                    difference=d,
+                    variance=v,
+                    lower=d - half,
+                    upper=d + half,
+                    p_value=None,
+                    confidence=0.95,
+                )
+            }
+        )
+    return release.model_copy(update={"points": tuple(points)})
+
+
+def test_combine_differences_is_rubins_rules_without_a_transformation() -> None:
+    """Estimate, interval and df equal Rubin's formulas on the raw difference scale."""
+    d = np.array([0.06, 0.09, 0.04])
+    u = np.array([0.0009, 0.0012, 0.0010])
+
+    c = combine_differences(d, u)
+
+    m = d.size
+    b = d.var(ddof=1)
+    t = u.mean() + (1 + 1 / m) * b  # Rubin (1987) 3.1.5
+    df = (m - 1) * (1 + u.mean() / ((1 + 1 / m) * b)) ** 2  # Rubin (1987) 3.3
+    half = stats.t.ppf(0.975, df) * np.sqrt(t)  # scipy's t quantile
+    assert c.estimate == pytest.approx(d.mean(), rel=1e-12)
+    assert (c.lower, c.upper) == pytest.approx((d.mean() - half, d.mean() + half))
+    assert c.variance == pytest.approx(t) and c.df == pytest.approx(df)
+
+
+def test_change_rows_and_findings_cover_every_degraded_site() -> None:
+    """Both sites below the reference minus margin get a finding with their change and CI."""
+    releases = {
+        "alder-bay": _with_changes(
+            _release("alder-bay", {0: [0.7], 10: [0.8, 0.82]}), [(0.1, 0.001), (0.12, 0.002)]
+        ),
+        "brightwater": _with_changes(
+            _release("brightwater", {0: [0.7], 10: [0.69, 0.66]}), [(-0.01, 0.001), (-0.04, 0.001)]
+        ),
+    }
+    # both before AUCs are 0.8 (see _release); reference 0.9 and margin 0.02 make both degraded
+    lines = [
+        ReferenceLine(site=s, line="none", estimate=0.8, lower=0.7, upper=0.9, method="delong")
+        for s in releases
+    ]
+
+    rows = adaptation_rows(releases, thresholds=())
+    found = change_findings(rows, lines, reference=0.9, margin=0.02)
+
+    changes = {r.site: r for r in rows if r.metric == AUC_CHANGE}
+    assert set(changes) == {"alder-bay", "brightwater"}  # not pooled
+    for site, pairs in (
+        ("alder-bay", [(0.1, 0.001), (0.12, 0.002)]),
+        ("brightwater", [(-0.01, 0.001), (-0.04, 0.001)]),
+    ):
+        expected = combine_differences([p[0] for p in pairs], [p[1] for p in pairs])
+        assert changes[site].estimate == pytest.approx(np.mean([p[0] for p in pairs]))
+        assert (changes[site].lower, changes[site].upper) == pytest.approx(
+            (expected.lower, expected.upper)
+        )
+    a, b = changes["alder-bay"], changes["brightwater"]
+    assert found == [
+        f"Local adaptation raised AUC at alder-bay by {a.estimate:.3f} (95% CI {a.lower:+.3f} "
+        f"to {a.upper:+.3f}; paired DeLong on its held-out test set, n = 10 local cases, "
+        "2 seeds).",
+        f"Local adaptation lowered AUC at brightwater by {-b.estimate:.3f} (95% CI "
+        f"{b.lower:+.3f} to {b.upper:+.3f}; paired DeLong on its held-out test set, n = 10 "
+        "local cases, 2 seeds).",
+    ]
+    # a site at the reference is not degraded: no finding for it
+    assert change_findings(rows, lines, reference=0.81, margin=0.02) == []

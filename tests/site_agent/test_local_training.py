@@ -6,9 +6,12 @@ dataset, ``sklearn.datasets.load_breast_cancer``), cut into an invented hospital
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pandas as pd
 import pytest
+import torch
 from sklearn.datasets import load_breast_cancer
 from sklearn.metrics import roc_auc_score
 
@@ -104,3 +107,51 @@ def test_adaptation_release_has_one_point_per_count_and_seed() -> None:
     assert release.points[0].after == release.before
     assert release.n_pool + release.n_test == 200
     assert all(p.n_used >= (p.n_requested or 0) for p in release.points)
+
+
+def _delong_variance_by_pairs(a: np.ndarray, b: np.ndarray, y: np.ndarray) -> float:
+    """Slow reference: var(AUC_a − AUC_b) from DeLong's structural components, by loops.
+
+    DeLong, DeLong & Clarke-Pearson (1988), Biometrics 44:837-845, eqs. 4-5.
+    """
+    pos, neg = np.flatnonzero(y == 1), np.flatnonzero(y == 0)
+
+    def psi(x: float, z: float) -> float:
+        return 1.0 if x > z else 0.5 if x == z else 0.0
+
+    v10 = np.array([[np.mean([psi(s[i], s[j]) for j in neg]) for i in pos] for s in (a, b)])
+    v01 = np.array([[np.mean([psi(s[i], s[j]) for i in pos]) for j in neg] for s in (a, b)])
+    s10, s01 = np.cov(v10), np.cov(v01)
+    c = np.array([1.0, -1.0])
+    return float(c @ (s10 / pos.size + s01 / neg.size) @ c)
+
+
+def test_each_fine_tuned_point_releases_the_paired_delong_change() -> None:
+    """The change equals sklearn's AUC after minus before, with DeLong's paired variance."""
+    bundle = load_bundle(wdbc_bundle())
+    data = local_data(wdbc_table(slice(200, 400), "site"), bundle, PLAN)
+
+    release = adapt_site(data, bundle, PLAN, (0.5,), site="site", protocol_hash="unregistered")
+
+    labels = data.y[data.test].numpy().astype(int)
+    with torch.no_grad():
+        before = torch.sigmoid(bundle.model(data.x[data.test])).numpy().astype(np.float64)
+    point = next(p for p in release.points if p.n_requested is None)
+    model = fine_tune(
+        copy.deepcopy(bundle.model),
+        data,
+        data.pool,
+        steps=PLAN.epochs,
+        learning_rate=PLAN.learning_rate,
+        l2_to_initial=PLAN.l2_to_initial,
+    )
+    with torch.no_grad():
+        after = torch.sigmoid(model(data.x[data.test])).numpy().astype(np.float64)
+    assert point.change is not None and point.change.difference is not None
+    # AUCs by scikit-learn's roc_auc_score (reference implementation)
+    expected = roc_auc_score(labels, after) - roc_auc_score(labels, before)
+    assert point.change.difference == pytest.approx(expected, abs=1e-12)
+    assert point.change.variance == pytest.approx(
+        _delong_variance_by_pairs(after, before, labels), rel=1e-9
+    )
+    assert all(p.change is None for p in release.points if p.n_requested == 0)

@@ -96,3 +96,29 @@ def test_policy_json_schema_is_json_and_describes_every_field() -> None:
     assert set(schema["properties"]) == set(SitePolicy.model_fields)
     assert schema["properties"]["min_cell"]["minimum"] == 1
     assert schema["additionalProperties"] is False
+
+
+def test_update_release_is_off_by_default_and_reads_from_toml() -> None:
+    """Without an [updates] table no update may leave; the table sets release and noise."""
+    text = LAKESHORE_TOML + (
+        "\n[updates]\nallowed = true\n"
+        "noise = { clipping_norm = 1.0, sensitivity = 1.0, epsilon = 0.5, delta = 1e-5 }\n"
+    )
+
+    default = SitePolicy.from_text(LAKESHORE_TOML, suffix=".toml")
+    written = SitePolicy.from_text(text, suffix=".toml")
+
+    assert default.updates.allowed is False and default.updates.noise is None
+    assert written.updates.allowed is True
+    assert written.updates.noise is not None and written.updates.noise.delta == 1e-5
+
+
+def test_update_noise_without_sensitivity_is_refused() -> None:
+    """Zero sensitivity would add no noise while charging epsilon: the policy is invalid."""
+    text = (
+        "[updates]\nallowed = true\n"
+        "noise = { clipping_norm = 1.0, sensitivity = 0.0, epsilon = 0.5, delta = 1e-5 }\n"
+    )
+
+    with pytest.raises(InputError, match="invalid site policy at updates"):
+        SitePolicy.from_text(text, suffix=".toml")
