@@ -243,15 +243,16 @@ def test_merge_rebins_histograms_to_shared_edges() -> None:
     )
 
 
-def test_merge_refuses_histograms_without_shared_bins() -> None:
-    """Binnings that share no interior edge cannot be re-binned to a common histogram."""
+def test_histograms_without_a_shared_interior_edge_merge_into_one_bin() -> None:
+    """Binnings that share only 0 and 1 merge exactly into the single bin [0, 1]."""
     p = validate_predictions(
         pd.DataFrame({"case_id": ["a"], "patient_id": ["p"], "label": ["1"], "score": ["0.6"]})
     )
     a = compute_statistics(p, EvaluationPlan(histogram_edges=(0.0, 0.3, 1.0)))
     b = compute_statistics(p, EvaluationPlan(histogram_edges=(0.0, 0.6, 1.0)))
-    with pytest.raises(InputError, match="share fewer than two bins"):
-        a.merge(b)
+    merged = a.merge(b).histogram
+    assert merged.edges == (0.0, 1.0)
+    assert merged.positive == (2,)
 
 
 def test_merge_refuses_binary_and_ordinal_tables_of_same_raters() -> None:
@@ -289,7 +290,7 @@ def test_histogram_with_too_many_bins_is_rejected() -> None:
     """Edges defining more than the allowed number of bins are refused."""
     edges = uniform_edges(2000)
     zeros = (0,) * 2000
-    with pytest.raises(ValidationError, match="between 2 and"):
+    with pytest.raises(ValidationError, match="between 1 and"):
         ScoreHistogram(edges=edges, positive=zeros, negative=zeros, all=zeros)
 
 
