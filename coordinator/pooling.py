@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from functools import reduce
 
@@ -65,6 +65,8 @@ class SiteInfo:
     role: str = "external"
     description: str | None = None
     resampled: int = 0
+    attributes: Mapping[str, str] = field(default_factory=dict)
+    """Site-level attributes (e.g. main scanner vendor) for subgroups of sites."""
 
 
 def nan_if_none(value: float | None) -> float:
@@ -196,7 +198,7 @@ def build_results(
         metrics += _pooled_subgroup_rows(releases, confidence)
         curves += _curves(POOLED, summary)
         two_by_two += _tables(POOLED, pooled)
-        meta = _meta_rows(releases, confidence)
+        meta = _meta_rows(releases, confidence) + _site_subgroup_meta(releases, info, confidence)
         tests = _distribution_tests(releases)
     outcomes = _outcomes(outcome, info)
     return StudyResults(
@@ -487,6 +489,43 @@ def _meta_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetaR
     return rows
 
 
+def _site_subgroup_meta(
+    releases: Sequence[SiteRelease], info: Mapping[str, SiteInfo], confidence: float
+) -> list[MetaRow]:
+    """Random-effects AUC (REML, HKSJ) within each group of sites sharing a site attribute.
+
+    The role (development or external) is always an attribute: the AUC across external
+    sites alone is the external-validation answer. Levels with fewer than two sites that
+    released an AUC are skipped.
+    """
+    levels: dict[tuple[str, str], list[SiteRelease]] = {}
+    for release in releases:
+        site = info.get(release.site, SiteInfo())
+        for attribute, level in {"role": site.role, **site.attributes}.items():
+            levels.setdefault((attribute, level), []).append(release)
+    rows = []
+    for (attribute, level), members in sorted(levels.items()):
+        usable = [r for r in members if r.exact.auc.auc is not None and r.exact.auc.se]
+        if len(usable) < 2 or len(usable) == len(releases):
+            continue  # too few sites, or the same sites as the whole study
+        effect = logit_auc(
+            [nan_if_none(r.exact.auc.auc) for r in usable],
+            [nan_if_none(r.exact.auc.se) for r in usable],
+        )
+        m = meta_analyze(
+            effect.estimates,
+            effect.variances,
+            labels=[r.site for r in usable],
+            method="reml",
+            hksj=True,
+            confidence=confidence,
+            transform=effect.transform,
+        )
+        row = _meta_row("auc", m, effect)
+        rows.append(row.model_copy(update={"subgroup": f"{attribute}={level}"}))
+    return rows
+
+
 def _meta(metric: str, effect: EffectSizes, labels: list[str], confidence: float) -> list[MetaRow]:
     rows = []
     for method, hksj in META_METHODS:
@@ -572,7 +611,14 @@ def _findings(
                     f"AUC: {names}."
                 )
     for row in meta:
-        if row.metric == "auc" and row.method == "reml":
+        if row.metric == "auc" and row.subgroup == "role=external":
+            findings.append(
+                f"Across the external sites alone (REML, HKSJ), the mean AUC is "
+                f"{row.estimate:.3f} (95% CI {row.lower:.3f} to {row.upper:.3f}); 95% "
+                f"prediction interval for a new site {row.prediction_lower:.3f} to "
+                f"{row.prediction_upper:.3f}."
+            )
+        if row.metric == "auc" and row.method == "reml" and row.subgroup is None:
             findings.append(
                 f"Random-effects meta-analysis (REML, HKSJ) gives a mean AUC of "
                 f"{row.estimate:.3f} (95% CI {row.lower:.3f} to {row.upper:.3f}); a new site "

@@ -530,7 +530,7 @@ def _meta_metric(meta: MetaRow) -> tuple[str, float | None]:
 
 def _primary_meta(results: StudyResults, metric: str) -> MetaRow | None:
     """Return the first random-effects row of ``metric`` (the primary analysis), else any."""
-    rows = [m for m in results.meta if m.metric == metric]
+    rows = [m for m in results.meta if m.metric == metric and m.subgroup is None]
     random = [m for m in rows if m.method != "fixed"]
     chosen = random or rows
     return chosen[0] if chosen else None
@@ -621,6 +621,8 @@ def _heterogeneity_section(results: StudyResults) -> str:
     for m in results.meta:
         metric, threshold = _meta_metric(m)
         name = _label(metric) + (f" at {threshold:g}" if threshold is not None else "")
+        if m.subgroup is not None:
+            name += f", sites with {m.subgroup}"
         estimate = _num(metric, m.estimate)
         ci = _interval(metric, m.lower, m.upper)
         rows.append(

@@ -102,6 +102,9 @@ class MetaRow(_Record):
     k: int
     hksj: bool = False
     note: str | None = None
+    subgroup: str | None = Field(
+        default=None, description="Sites sharing a site attribute, 'attribute=level'."
+    )
 
 
 class DistributionTest(_Record):

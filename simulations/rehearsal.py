@@ -177,6 +177,11 @@ def rehearse(
     info = {
         site.name: SiteInfo(
             role="development" if site is development else "external",
+            attributes={
+                "main scanner vendor": max(
+                    site.spec.vendor_mix, key=site.spec.vendor_mix.__getitem__
+                )
+            },
             description=site.shift_description,
             resampled=site.n_resampled,
         )

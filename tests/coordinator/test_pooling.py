@@ -198,3 +198,28 @@ def test_pooled_subgroup_sensitivity_equals_recall_on_that_subgroup_of_the_union
     )
     exact = roc_auc_score(vendor_b["label"].astype(int), vendor_b["score"].astype(float))
     assert auc.bound is not None and abs(auc.estimate - exact) <= auc.bound + 1e-12
+
+
+def test_site_attribute_subgroup_pools_only_the_external_sites(
+    releases: dict[str, SiteRelease],
+) -> None:
+    """The role=external row pools exactly the external sites' logit AUCs (REML, HKSJ)."""
+    from coordinator.meta_analysis import logit_auc, meta_analyze
+
+    info = {SITES[0]: SiteInfo(role="development"), SITES[1]: SiteInfo(), SITES[2]: SiteInfo()}
+    results = build_results(PROTOCOL, _outcome(releases, []), engine="test", sites=info)
+    row = next(m for m in results.meta if m.subgroup == "role=external")
+    external = [releases[SITES[1]], releases[SITES[2]]]
+    effect = logit_auc(
+        [float(r.exact.auc.auc or 0) for r in external],
+        [float(r.exact.auc.se or 0) for r in external],
+    )
+    # REML checked against published BCG results in test_meta_analysis.py.
+    expected = meta_analyze(
+        effect.estimates, effect.variances, method="reml", hksj=True, transform="logit"
+    )
+    assert row.k == 2
+    assert expected.back_transformed is not None
+    assert row.estimate == pytest.approx(expected.back_transformed.estimate)
+    assert np.isnan(row.prediction_lower)  # k < 3: no prediction interval (Higgins et al. 2009)
+    assert not any(m.subgroup == "role=development" for m in results.meta)  # one site only
