@@ -81,7 +81,7 @@ def kruskal_wallis_binned(counts: Sequence[Sequence[int]]) -> KruskalWallis:
     rank_sums = table @ midrank
     sizes = table.sum(axis=1)
     h = 12.0 / (n_total * (n_total + 1.0)) * float(np.sum(rank_sums**2 / sizes))
-    h = (h - 3.0 * (n_total + 1.0)) / correction
+    h = max((h - 3.0 * (n_total + 1.0)) / correction, 0.0)  # rounding can dip below zero
     return KruskalWallis(h, k - 1, float(chi2.sf(h, k - 1)), int(n_total), k)
 
 
