@@ -29,20 +29,18 @@ series, which the drift analysis skips, and is asked again on the next run.
 from __future__ import annotations
 
 import logging
-import uuid
 from collections.abc import Callable
 from datetime import UTC, date, datetime
 
 import pandas as pd
-from flwr.app import Message
 from flwr.serverapp import Grid
 from pydantic import BaseModel, ConfigDict, Field
 
 from coordinator.results_store import ResultsStore, WindowWrite
-from coordinator.rounds import NodeFault, RoundOutcome, SiteDecline, sorted_replies
+from coordinator.rounds import NodeFault, SiteDecline, ask_sites
 from site_agent.exceptions import InputError
 from site_agent.protocol import MonitoringPlan, Operation, StudyProtocol
-from site_agent.wire import EVALUATE_MESSAGE_TYPE, SiteRequest, TimeWindow, encode_request
+from site_agent.wire import TimeWindow
 
 logger = logging.getLogger(__name__)
 
@@ -154,7 +152,9 @@ def run_monitoring_rounds(
             rounds.append(_skipped(number, window, held))
             continue
         targets = [n for n in nodes if site_of_node.get(n) not in final]
-        result = _ask(grid, protocol, protocol_hash, bundle, window, number, targets)
+        result = ask_sites(
+            grid, protocol, bundle, number, Operation.MONITOR, targets, window=window
+        )
         site_of_node.update({node: site for site, node in result.node_of_site.items()})
         writes: dict[str, WindowWrite] = {}
         for site, release in result.releases.items():
@@ -209,36 +209,3 @@ def _skipped(number: int, window: TimeWindow, held: dict[str, int]) -> WindowRou
         declines=[],
         faults=[],
     )
-
-
-def _ask(
-    grid: Grid,
-    protocol: StudyProtocol,
-    protocol_hash: str,
-    bundle: bytes | None,
-    window: TimeWindow,
-    number: int,
-    nodes: list[int],
-) -> RoundOutcome:
-    requests: dict[int, SiteRequest] = {}
-    messages: list[Message] = []
-    for node_id in nodes:
-        request = SiteRequest(
-            operation=Operation.MONITOR,
-            protocol_json=protocol.canonical_json(),
-            protocol_hash=protocol_hash,
-            round_number=number,
-            request_id=uuid.uuid4().hex,
-            window=window,
-        )
-        requests[node_id] = request
-        messages.append(
-            Message(
-                encode_request(request, bundle),
-                node_id,
-                EVALUATE_MESSAGE_TYPE,
-                group_id=str(number),
-            )
-        )
-    replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
-    return sorted_replies(replies, requests, protocol_hash, number)

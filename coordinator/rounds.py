@@ -18,7 +18,7 @@ names a site another node already answered for is a fault, not a second release.
 from __future__ import annotations
 
 import uuid
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 
 from flwr.app import Message
 from flwr.serverapp import Grid
@@ -34,6 +34,7 @@ from site_agent.wire import (
     ReplyStatus,
     SiteReply,
     SiteRequest,
+    TimeWindow,
     decode_reply,
     encode_request,
 )
@@ -103,27 +104,31 @@ class StudyOutcome(_Record):
     )
 
 
-def run_evaluation_round(
-    grid: Grid, protocol: StudyProtocol, bundle: bytes | None, round_number: int
+def ask_sites(
+    grid: Grid,
+    protocol: StudyProtocol,
+    bundle: bytes | None,
+    round_number: int,
+    operation: Operation,
+    node_ids: Sequence[int],
+    *,
+    window: TimeWindow | None = None,
 ) -> RoundOutcome:
-    """Ask every connected node for its evaluation release and collect the answers.
+    """Send one request per node, wait for the replies, and sort them by outcome.
 
-    Raises
-    ------
-    DeploymentError
-        If fewer sites than ``protocol.quorum`` released statistics.
+    No quorum is checked here: evaluation rounds require one, monitoring rounds do not.
     """
     protocol_hash = protocol.content_hash()
-    node_ids = sorted(grid.get_node_ids())
     requests: dict[int, SiteRequest] = {}
     messages: list[Message] = []
     for node_id in node_ids:
         request = SiteRequest(
-            operation=Operation.EVALUATE,
+            operation=operation,
             protocol_json=protocol.canonical_json(),
             protocol_hash=protocol_hash,
             round_number=round_number,
             request_id=uuid.uuid4().hex,
+            window=window,
         )
         requests[node_id] = request
         messages.append(
@@ -135,7 +140,21 @@ def run_evaluation_round(
             )
         )
     replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
-    outcome = sorted_replies(replies, requests, protocol_hash, round_number)
+    return _sorted_replies(replies, requests, protocol_hash, round_number)
+
+
+def run_evaluation_round(
+    grid: Grid, protocol: StudyProtocol, bundle: bytes | None, round_number: int
+) -> RoundOutcome:
+    """Ask every connected node for its evaluation release and collect the answers.
+
+    Raises
+    ------
+    DeploymentError
+        If fewer sites than ``protocol.quorum`` released statistics.
+    """
+    node_ids = sorted(grid.get_node_ids())
+    outcome = ask_sites(grid, protocol, bundle, round_number, Operation.EVALUATE, node_ids)
     if len(outcome.releases) < protocol.quorum:
         raise DeploymentError(
             f"round {round_number}: {len(outcome.releases)} of {len(node_ids)} sites released "
@@ -156,7 +175,7 @@ def run_study_rounds(grid: Grid, protocol: StudyProtocol, bundle: bytes | None) 
     )
 
 
-def sorted_replies(
+def _sorted_replies(
     replies: Iterable[Message],
     requests: dict[int, SiteRequest],
     protocol_hash: str,
