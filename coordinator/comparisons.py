@@ -27,6 +27,9 @@ from scipy.stats import chi2
 from site_agent.exceptions import InputError
 from site_agent.summaries import ScoreHistogram, common_edges
 
+_H_ROUNDING = 1e-12
+"""Relative size below which H is taken as rounding error of an exact zero."""
+
 
 @dataclass(frozen=True, slots=True)
 class KruskalWallis:
@@ -81,7 +84,10 @@ def kruskal_wallis_binned(counts: Sequence[Sequence[int]]) -> KruskalWallis:
     rank_sums = table @ midrank
     sizes = table.sum(axis=1)
     h = 12.0 / (n_total * (n_total + 1.0)) * float(np.sum(rank_sums**2 / sizes))
-    h = max((h - 3.0 * (n_total + 1.0)) / correction, 0.0)  # rounding can dip below zero
+    h -= 3.0 * (n_total + 1.0)
+    # Identical groups give H = 0 exactly, but the subtraction leaves rounding error of
+    # either sign, relative to the terms subtracted: count that as zero (so p = 1).
+    h = h / correction if h > _H_ROUNDING * 3.0 * (n_total + 1.0) else 0.0
     return KruskalWallis(h, k - 1, float(chi2.sf(h, k - 1)), int(n_total), k)
 
 

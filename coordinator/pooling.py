@@ -214,7 +214,7 @@ def build_results(
         flow=flow,
         meta=meta,
         distribution_tests=tests,
-        findings=_findings(outcomes, metrics, meta, info),
+        findings=_findings(outcomes, metrics, meta, info, confidence),
         notes=[*notes, pooled_vs_meta_note()],
     )
 
@@ -575,8 +575,10 @@ def _findings(
     metrics: Sequence[MetricRow],
     meta: Sequence[MetaRow],
     info: Mapping[str, SiteInfo],
+    confidence: float,
 ) -> list[str]:
     """Plain-language findings: development versus external AUC, pooling, heterogeneity."""
+    level = f"{confidence:.0%}"
     aucs = {
         r.site: r
         for r in metrics
@@ -592,7 +594,7 @@ def _findings(
         r = aucs[site]
         findings.append(
             f"At the development site {site} the AUC was {r.estimate:.3f} "
-            f"(95% CI {r.lower:.3f} to {r.upper:.3f})."
+            f"({level} CI {r.lower:.3f} to {r.upper:.3f})."
         )
     if external:
         low, high = external[0], external[-1]
@@ -607,23 +609,24 @@ def _findings(
                 names = ", ".join(r.site for r in worse)
                 findings.append(
                     f"The model performed measurably worse than at the development site at "
-                    f"{len(worse)} site(s), whose 95% CI lies wholly below the development "
+                    f"{len(worse)} site(s), whose {level} CI lies wholly below the development "
                     f"AUC: {names}."
                 )
     for row in meta:
         if row.metric == "auc" and row.subgroup == "role=external":
             findings.append(
                 f"Across the external sites alone (REML, HKSJ), the mean AUC is "
-                f"{row.estimate:.3f} (95% CI {row.lower:.3f} to {row.upper:.3f}); 95% "
+                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); {level} "
                 f"prediction interval for a new site {row.prediction_lower:.3f} to "
                 f"{row.prediction_upper:.3f}."
             )
         if row.metric == "auc" and row.method == "reml" and row.subgroup is None:
             findings.append(
                 f"Random-effects meta-analysis (REML, HKSJ) gives a mean AUC of "
-                f"{row.estimate:.3f} (95% CI {row.lower:.3f} to {row.upper:.3f}); a new site "
+                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); a new site "
                 f"should expect an AUC between {row.prediction_lower:.3f} and "
-                f"{row.prediction_upper:.3f} (95% prediction interval); I² = {100 * row.i2:.0f}%."
+                f"{row.prediction_upper:.3f} ({level} prediction interval); "
+                f"I² = {100 * row.i2:.0f}%."
             )
     not_released = [o for o in outcomes if o.status != "released"]
     if not_released:

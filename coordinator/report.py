@@ -177,14 +177,15 @@ def _num(metric: str, value: float) -> str:
     if not math.isfinite(value):
         return DASH
     if metric in PERCENT_METRICS:
-        return f"{100 * value:.1f}%"
-    return f"{value:.3f}"
+        return f"{100 * value:.1f}%".replace("-0.0%", "0.0%")
+    return f"{value:.3f}".replace("-0.000", "0.000")  # no negative zero from rounding
 
 
 def _interval(metric: str, lower: float, upper: float) -> str:
     if not (math.isfinite(lower) and math.isfinite(upper)):
         return ""
-    separator = " to " if lower < 0 else "–"  # a dash between negative numbers misreads
+    negative = _num(metric, lower).startswith("-")
+    separator = " to " if negative else "–"  # a dash between negative numbers misreads
     return f"{_num(metric, lower)}{separator}{_num(metric, upper)}"
 
 
@@ -592,16 +593,21 @@ def _forest_section(results: StudyResults) -> str:
             f"Diamond: pooled estimate {_num(metric, meta.estimate)} "
             f"({method}; pooled on the {_e(meta.scale)} scale), its width the 95% CI. "
             "Grey bar: 95% prediction interval, where the value at a new site like these "
-            "is expected to fall. Open circle: all released cases merged as one cohort. "
-            "The two pooled numbers can differ: the random-effects estimate averages the "
-            "sites' estimates with weights that grow with precision and shrink with "
-            "between-site spread, whereas the one-cohort estimate counts every case equally, "
-            "so large sites dominate it and differences in prevalence or score scale between "
-            "sites enter it directly"
+            "is expected to fall. "
             + (
-                " (for AUC, cases of one site are also ranked against cases of another)."
-                if metric == "auc"
-                else "."
+                "Open circle: all released cases merged as one cohort. The two pooled "
+                "numbers can differ: the random-effects estimate averages the sites' "
+                "estimates with weights that grow with precision and shrink with "
+                "between-site spread, whereas the one-cohort estimate counts every case "
+                "equally, so large sites dominate it and differences in prevalence or score "
+                "scale between sites enter it directly"
+                + (
+                    " (for AUC, cases of one site are also ranked against cases of another)."
+                    if metric == "auc"
+                    else "."
+                )
+                if cohort_row is not None
+                else ""
             )
             + " Other pooling methods are in the heterogeneity table."
         )
@@ -715,22 +721,38 @@ def _roc_section(results: StudyResults) -> str:
     curves = _curves(results, "roc")
     if not curves:
         return "<p>No ROC curves were released.</p>"
-    aucs = {
-        c.site: _num("auc", row.estimate)
-        for c in curves
-        if (row := headline_auc(results, c.site)) is not None
-    }
+    aucs = {c.site: _roc_label(results, c) for c in curves}
+    drawn = (
+        "Curves are drawn from the score bins the sites released, so a curve is coarser "
+        "than the site's exact AUC when its scores crowd into few bins; the area under the "
+        "drawn curve is given beside the AUC where the two differ."
+    )
     return _figure(
         "fig-roc-all",
         plots.roc_overview_svg(curves, aucs),
         "<b>ROC curves of all sites.</b> Each line traces sensitivity against the false-"
         "positive rate as the threshold moves; the dashed black line is all released cases "
-        "as one cohort, the dotted diagonal a test with no discrimination.",
+        f"as one cohort, the dotted diagonal a test with no discrimination. {drawn}",
     ) + _figure(
         "fig-roc-sites",
         plots.roc_small_multiples_svg(curves, aucs),
-        "<b>ROC curve per site</b>, titled with the site's AUC.",
+        f"<b>ROC curve per site</b>, titled with the site's AUC. {drawn}",
     )
+
+
+def _roc_label(results: StudyResults, curve: CurvePoints) -> str:
+    """Return the site's AUC, and the area under the drawn (binned) curve if it differs."""
+    area = _num("auc", _trapezoid_area(curve.x, curve.y))
+    row = headline_auc(results, curve.site)
+    if row is None or not math.isfinite(row.estimate):
+        return f"curve area {area}"
+    auc = _num("auc", row.estimate)
+    return auc if auc == area else f"{auc}; curve area {area}"
+
+
+def _trapezoid_area(x: Sequence[float], y: Sequence[float]) -> float:
+    """Area under a polyline through the points (the trapezoidal rule), as drawn."""
+    return math.fsum((x[i + 1] - x[i]) * (y[i + 1] + y[i]) / 2 for i in range(len(x) - 1))
 
 
 def _calibration_section(results: StudyResults) -> str:

@@ -9,6 +9,8 @@ from __future__ import annotations
 import logging
 import sys
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Annotated
 
@@ -120,15 +122,16 @@ def rehearse_command(
             from simulations.dataset import load_feature_table
 
             dataset = load_feature_table(data, label_column)
-        output = rehearse(
-            chosen,
-            out,
-            engine=engine,  # type: ignore[arg-type]
-            architecture=architecture,
-            dataset=dataset,
-            progress=progress,
-            adapt=adapt,
-        )
+        with _flower_console_silenced():
+            output = rehearse(
+                chosen,
+                out,
+                engine=engine,  # type: ignore[arg-type]
+                architecture=architecture,
+                dataset=dataset,
+                progress=progress,
+                adapt=adapt,
+            )
     except SitepoolError as exc:
         _fail(str(exc))
     for finding in output.results.findings:
@@ -136,6 +139,28 @@ def rehearse_command(
     console.print(f"results: {output.results_path}")
     console.print(f"report:  [bold]{output.report_path}[/bold]  (open it in a browser)")
     console.print(f"done in {output.seconds:.1f} s. {RESEARCH_NOTICE}")
+
+
+@contextmanager
+def _flower_console_silenced() -> Iterator[None]:
+    """Send Flower's log to the log file only: detach its console handler for a while.
+
+    Flower's ``flwr`` logger writes to the terminal through its own handler as well as
+    propagating to the root logger (the log file); the terminal keeps the progress lines.
+    """
+    flower = logging.getLogger("flwr")
+    console = [
+        h
+        for h in flower.handlers
+        if isinstance(h, logging.StreamHandler) and not isinstance(h, logging.FileHandler)
+    ]
+    for handler in console:
+        flower.removeHandler(handler)
+    try:
+        yield
+    finally:
+        for handler in console:
+            flower.addHandler(handler)
 
 
 def _fail(message: str) -> None:

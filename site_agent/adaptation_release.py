@@ -11,8 +11,9 @@ list is bounded by the protocol's grid and thresholds, so no per-case value has 
 to go.
 
 :func:`control_adaptation` applies the site's minimum cell size: it refuses a release
-whose test-set totals are small and suppresses small confusion cells (their counts become
-0 and the sensitivity and specificity that rest on them are withheld).
+whose test-set totals are small and suppresses small confusion cells with their partners in
+the same class (their counts become 0 and the sensitivity and specificity that rest on them
+are withheld).
 
 Undefined statistics are ``None`` with a ``reason``; JSON never carries NaN.
 """
@@ -24,7 +25,7 @@ import math
 from pydantic import BaseModel, ConfigDict, Field
 
 from site_agent.exceptions import DisclosureRefused
-from site_agent.policy import SitePolicy
+from site_agent.policy import SitePolicy, suppressed_confusion_cells
 from site_agent.release import (
     SITE_NAME_PATTERN,
     UNDEFINED,
@@ -134,7 +135,8 @@ def control_adaptation(
 
     A count is releasable when it is 0 or at least ``min_cell`` (common practice in
     statistical disclosure control). Test-set totals and the pool size must be releasable;
-    small confusion cells are set to 0 and their sensitivity and specificity withheld.
+    small confusion cells and their partners in the same class (the class totals are
+    released) are set to 0, and their sensitivity and specificity withheld.
 
     Raises
     ------
@@ -163,7 +165,7 @@ def _controlled(perf: Performance, m: int, path: str, suppressed: list[str]) -> 
     rows = []
     for i, t in enumerate(perf.at_thresholds):
         cells = {"tp": t.tp, "fp": t.fp, "fn": t.fn, "tn": t.tn}
-        small = [k for k, v in cells.items() if not _ok(v, m)]
+        small = suppressed_confusion_cells(cells, m)
         if not small:
             rows.append(t)
             continue

@@ -13,16 +13,19 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    more entries than the site has cases (its resolution is then one case, not a bin).
 3. Refused: a small site total (cases, positives, negatives, patients); a small total in
    any subgroup level. A small number of pending labels is withheld instead (pending cases
-   leave the release: their counts and the ``all`` histogram row are dropped).
+   leave the release: their counts, the ``all`` histogram row and the agreement tables,
+   which count them too, are dropped).
 4. Refused: subgroup differences. Within an attribute, the cases in no released level
    (site total minus the sum of levels) must not be small. Across two attributes, the
    totals of any two levels must not differ by a small number: if one level nests in the
    other, the difference isolates that many cases. Counts cannot tell nesting apart, so
    the rule is applied to every cross-attribute pair.
 5. Small cells: confusion cells and agreement cells are suppressed (set to 0, listed in
-   the note; the threshold's patient moments are dropped with them). Histogram and
-   calibration bins are suppressed, or merged with their neighbours until every row of
-   every bin is 0 or at least ``m`` (the new edges are a subset of the old).
+   the note; the threshold's patient moments are dropped with them). A small confusion
+   cell takes its partner in the same class with it (class totals are released). Histogram
+   and calibration bins are suppressed, with further bins until no row's suppressed sum is
+   small, or merged with their neighbours until every row of every bin is 0 or at least
+   ``m`` (the new edges are a subset of the old).
 6. With differential privacy on, every count and per-bin sum gets noise *first*
    (:mod:`site_agent.privacy_budget`); rules 2-5 then run on the noisy values, which is
    post-processing. The exact site-level estimates and the patient moments are withheld,
@@ -63,7 +66,7 @@ from site_agent.adaptation_release import control_adaptation
 from site_agent.approvals import ApprovalStatus, approval_status
 from site_agent.exceptions import DisclosureRefused
 from site_agent.ledger import LedgerSession, Outcome, ReleaseLedger
-from site_agent.policy import SitePolicy, SmallCellAction
+from site_agent.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
 from site_agent.privacy_budget import check_budget, noised_release
 from site_agent.protocol import Operation, StudyProtocol
 from site_agent.release import POOLED_LEVELS, AttributeCounts, SiteRelease
@@ -370,8 +373,13 @@ def _controlled(
     """Apply rule 5 (small cells) and the pending-case rule to one set of statistics."""
     histogram = stats.histogram
     n_observations, n_pending = stats.n_observations, stats.n_pending
+    agreement = stats.agreement
     if not _ok(n_pending, m):
         note.withheld.append(f"{path}.pending")
+        if agreement:
+            # Agreement tables count pending cases too: their totals would give the count away.
+            note.withheld.append(f"{path}.agreement")
+            agreement = ()
         n_observations -= n_pending
         n_pending = 0
         histogram = histogram.model_copy(
@@ -393,14 +401,14 @@ def _controlled(
         histogram=_histogram(histogram, m, action, f"{path}.histogram", note),
         calibration=_calibration(stats.calibration, m, action, f"{path}.calibration", note),
         agreement=tuple(
-            _agreement(t, m, f"{path}.agreement[{i}]", note) for i, t in enumerate(stats.agreement)
+            _agreement(t, m, f"{path}.agreement[{i}]", note) for i, t in enumerate(agreement)
         ),
     )
 
 
 def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionCounts:
     cells = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
-    small = [k for k, v in cells.items() if not _ok(v, m)]
+    small = suppressed_confusion_cells(cells, m)
     if not small:
         return c
     note.suppressed.extend(f"{path}.{k}" for k in small)
@@ -477,14 +485,33 @@ def _histogram(
         return h.coarsened((*(h.edges[a] for a, _ in groups), h.edges[-1]))
     kept = []
     for name, row in zip(("positive", "negative", "pending"), rows, strict=True):
-        note.suppressed.extend(f"{path}.{name}[{i}]" for i, v in enumerate(row) if not _ok(v, m))
-        kept.append(tuple(v if _ok(v, m) else 0 for v in row))
+        small = _with_complements([row], {i for i, v in enumerate(row) if not _ok(v, m)}, m)
+        note.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(small))
+        kept.append(tuple(0 if i in small else v for i, v in enumerate(row)))
     return ScoreHistogram(
         edges=h.edges,
         positive=kept[0],
         negative=kept[1],
         all=tuple(sum(col) for col in zip(*kept, strict=True)),
     )
+
+
+def _with_complements(rows: Sequence[Sequence[int]], small: set[int], m: int) -> set[int]:
+    """Return ``small`` grown until each row's suppressed sum is 0 or at least ``m``.
+
+    Every row's total is released (cases, positives, negatives, pending), so the sum of
+    the suppressed entries of a row is its total minus what is kept: a small cell
+    suppressed alone would be recovered by subtraction. The nonzero bin with the smallest
+    count in the first row joins until no row's suppressed sum is small (secondary
+    suppression, common practice in statistical disclosure control).
+    """
+    small = set(small)
+    while not all(_ok(sum(row[i] for i in small), m) for row in rows):
+        rest = [i for i in range(len(rows[0])) if i not in small and any(r[i] for r in rows)]
+        if not rest:  # only possible when a row total is itself small (noisy counts)
+            break
+        small.add(min(rest, key=lambda i: (rows[0][i], i)))
+    return small
 
 
 def _calibration(
@@ -498,8 +525,9 @@ def _calibration(
         groups = _groups(rows, m)
         note.merged.append(path)
         return c.coarsened((*(c.edges[a] for a, _ in groups), c.edges[-1]))
-    small = [i for i in range(len(c.count)) if not all(_ok(r[i], m) for r in rows)]
-    note.suppressed.extend(f"{path}[{i}]" for i in small)
+    primary = {i for i in range(len(c.count)) if not all(_ok(r[i], m) for r in rows)}
+    small = _with_complements(rows, primary, m)
+    note.suppressed.extend(f"{path}[{i}]" for i in sorted(small))
 
     def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
         return tuple(type(v)(0) if i in small else v for i, v in enumerate(values))

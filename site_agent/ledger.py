@@ -211,8 +211,20 @@ class LedgerSession:
             self._handle.truncate(cut)
             self._handle.flush()
             os.fsync(self._handle.fileno())
+        elif len(entries) < acknowledged:
+            # Whole acknowledged entries are gone. Appending would rewrite the head and
+            # hide the cut from verify_ledger, so refuse instead of repairing.
+            raise LedgerError(
+                f"ledger entry {len(entries) + 1} is missing but was acknowledged; run verify"
+            )
         if entries and entries[-1].sequence != len(entries):
             raise LedgerError(f"ledger entry {len(entries)} is out of sequence; run verify")
+        if (
+            head is not None
+            and acknowledged >= 1
+            and (entries[acknowledged - 1].entry_hash != head.entry_hash)
+        ):
+            raise LedgerError(f"ledger entry {acknowledged} differs from the head file; run verify")
         return entries
 
     @property

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import json
 import tomllib
+from collections.abc import Mapping
 from enum import StrEnum
 from pathlib import Path
 from typing import Any
@@ -179,6 +180,22 @@ class SitePolicy(_Frozen):
                 update={"approvals_file": path.parent / policy.approvals_file}
             )
         return policy
+
+
+_CLASS_PARTNER = {"tp": "fn", "fn": "tp", "fp": "tn", "tn": "fp"}
+
+
+def suppressed_confusion_cells(cells: Mapping[str, int], min_cell: int) -> tuple[str, ...]:
+    """Return the confusion cells (``tp``, ``fp``, ``fn``, ``tn``) that must be set to 0.
+
+    Each small cell (1 to ``min_cell`` − 1) goes, and so does its partner in the same class
+    (``tp`` with ``fn``, ``fp`` with ``tn``): the class totals are released beside the
+    cells, so a small cell suppressed alone would be its class total minus its partner
+    (complementary suppression, common practice in statistical disclosure control).
+    """
+    small = {k for k, v in cells.items() if 0 < v < min_cell}
+    small |= {_CLASS_PARTNER[k] for k in small}
+    return tuple(k for k in cells if k in small)
 
 
 def policy_json_schema() -> dict[str, Any]:

@@ -17,7 +17,7 @@ every such message, so updates pass the same gate as every other reply:
    leaves; a site whose policy turns differential privacy on declines an update without
    such noise;
 4. the reply may hold exactly one ``ArrayRecord`` and one ``MetricRecord`` with only
-   ``num-examples``, which must not be a small count;
+   ``num-examples``, which must not be a small count, and no ``ConfigRecord``;
 5. the noisy update's epsilon is charged to the study's budget at the site
    (``privacy.study_epsilon``, sequential composition over the ledger); over budget, the
    update is declined and nothing is charged;
@@ -309,9 +309,11 @@ def _checked_update(
     reply: Message, policy: SitePolicy, msg: Message, noise: UpdateNoise | None
 ) -> dict[str, JsonValue]:
     content = reply.content
-    if set(content.array_records) != {TRAIN_ARRAYS} or set(content.metric_records) != {
-        TRAIN_METRICS
-    }:
+    if (
+        set(content.array_records) != {TRAIN_ARRAYS}
+        or set(content.metric_records) != {TRAIN_METRICS}
+        or content.config_records
+    ):
         raise DisclosureRefused(RefusalCode.SITE_ERROR.value)
     metrics: MetricRecord = content.metric_records[TRAIN_METRICS]
     n = metrics.get(NUM_EXAMPLES)

@@ -518,3 +518,26 @@ def test_study_where_no_site_released_renders_and_exports(tmp_path: Path) -> Non
     paths = write_exports(results, tmp_path / "csv")
     assert len(pd.read_csv(paths[4])) == 1  # sites.csv: the silent site
     assert all(p.exists() for p in paths)
+
+
+def test_roc_labels_give_the_area_of_a_curve_drawn_from_coarse_bins(tmp_path: Path) -> None:
+    """A ROC curve drawn from coarse score bins is labelled with its own area beside the AUC."""
+    ys, ss, _ = _data()
+    site = RELEASED[1]
+    binned = np.floor(ss[site] * 4) / 4  # four score bins: the drawn curve is much coarser
+    fpr, tpr, _ = roc_curve(ys[site], binned)  # scikit-learn roc_curve
+    coarse = CurvePoints(site=site, kind="roc", x=fpr.tolist(), y=tpr.tolist())
+    results = breast_cancer_results()
+    curves = [coarse if (c.site, c.kind) == (site, "roc") else c for c in results.curves]
+    path = render_report(results.model_copy(update={"curves": curves}), tmp_path / "r.html")
+    parser = _Page()
+    parser.feed(path.read_text(encoding="utf-8"))
+    area = roc_auc_score(ys[site], binned)  # scikit-learn: area under the binned curve
+    auc, _ = _delong_auc(ys[site], ss[site])
+    assert f"{area:.3f}" != f"{auc:.3f}"
+    for figure in ("fig-roc-all", "fig-roc-sites"):
+        text = parser.text_of(figure)
+        assert f"{auc:.3f}; curve area {area:.3f}" in text
+        assert "drawn from the score bins" in text
+    exact, _ = _delong_auc(ys[RELEASED[2]], ss[RELEASED[2]])  # its curve is not binned
+    assert f"{exact:.3f}; curve area" not in parser.text_of("fig-roc-sites")

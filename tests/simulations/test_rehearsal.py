@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import io
 import json
+import logging
 from pathlib import Path
 
 import pandas as pd
@@ -103,7 +105,10 @@ def test_rehearsal_completes_with_one_site_declining(tmp_path: Path) -> None:
 
 
 def test_rehearse_command_takes_a_user_feature_table(tmp_path: Path) -> None:
-    """--data runs the rehearsal on a user's table (here scikit-learn's copy, re-labelled)."""
+    """--data runs the rehearsal on a user's table (here scikit-learn's copy, re-labelled).
+
+    Flower's own log of the federated rounds goes to rehearsal.log, not to the terminal.
+    """
     from sklearn.datasets import load_breast_cancer
     from typer.testing import CliRunner
 
@@ -117,10 +122,20 @@ def test_rehearse_command_takes_a_user_feature_table(tmp_path: Path) -> None:
     path = tmp_path / "features.csv"
     frame.to_csv(path, index=False)
     out = tmp_path / "out"
-    result = CliRunner().invoke(
-        app, ["rehearse", "--out", str(out), "--data", str(path), "--label-column", "diagnosis"]
-    )
+    terminal = io.StringIO()
+    flower_console = logging.getLogger("flwr").handlers[0]
+    assert isinstance(flower_console, logging.StreamHandler)
+    previous = flower_console.setStream(terminal)  # what Flower would print on the terminal
+    try:
+        result = CliRunner().invoke(
+            app,
+            ["rehearse", "--out", str(out), "--data", str(path), "--label-column", "diagnosis"],
+        )
+    finally:
+        flower_console.setStream(previous)
     assert result.exit_code == 0, result.output
     assert (out / "report.html").exists()
+    assert "configure_train" in (out / "rehearsal.log").read_text()  # Flower's round log
+    assert "configure_train" not in terminal.getvalue() + result.output
     bad = CliRunner().invoke(app, ["rehearse", "--out", str(out), "--data", str(path)])
     assert bad.exit_code == 2 and "no label column 'label'" in bad.output

@@ -57,14 +57,17 @@ def _release(tp: int, fn: int, n_test_positive: int = 30) -> AdaptationRelease:
     )
 
 
-def test_small_confusion_cell_is_suppressed_with_its_proportions() -> None:
-    """A false-negative count of 3 (< 5) is zeroed; its proportions are withheld."""
+def test_small_confusion_cell_is_suppressed_with_its_partner_and_proportions() -> None:
+    """A false-negative count of 3 (< 5) is zeroed with tp; its proportions are withheld."""
     out, suppressed = control_adaptation(_release(tp=27, fn=3), SitePolicy(min_cell=5))
 
     row = out.before.at_thresholds[0]
-    assert row.fn == 0 and row.tp == 27
+    # Complementary suppression (common practice): with n_test_positive released, keeping
+    # tp would give fn back as n_test_positive − tp.
+    assert row.fn == 0 and row.tp == 0
+    assert (row.fp, row.tn) == (6, 34)  # the negative class has no small cell: kept
     assert row.sensitivity.estimate is None and row.sensitivity.reason == SUPPRESSED
-    assert suppressed == ("before.at_thresholds[0].fn",)
+    assert suppressed == ("before.at_thresholds[0].tp", "before.at_thresholds[0].fn")
     assert out.before.auc == AUC
 
 

@@ -243,3 +243,33 @@ def test_cli_show_json_prints_each_entry_as_stored(tmp_path: Path) -> None:
     shown = [json.loads(line) for line in result.output.splitlines()]
     stored = [json.loads(line) for line in _lines(path)]
     assert [e["entry_hash"] for e in shown] == [e["entry_hash"] for e in stored]
+
+
+def test_append_refuses_a_ledger_whose_acknowledged_last_entry_was_dropped(
+    tmp_path: Path,
+) -> None:
+    """Dropping whole acknowledged lines is refused, so the next append cannot hide the cut."""
+    path = _filled_ledger(tmp_path, entries=4)
+    _write(path, _lines(path)[:-1])  # the entry that charged epsilon is gone
+
+    with pytest.raises(LedgerError, match="entry 4 is missing but was acknowledged"):
+        ReleaseLedger(path).append(outcome=Outcome.DECLINED, reason="operation_not_allowed")
+
+    result = verify_ledger(path)  # the head file still records the cut
+    assert not result.ok and result.bad_sequence == 4
+
+
+def test_append_refuses_a_ledger_whose_head_hash_does_not_match(tmp_path: Path) -> None:
+    """A ledger rebuilt with a new chain under the old head is refused, not extended."""
+    path = _filled_ledger(tmp_path, entries=2)
+    head = path.with_name(path.name + ".head")
+    rebuilt = tmp_path / "rebuilt.jsonl"
+    other = ReleaseLedger(rebuilt)
+    other.append(outcome=Outcome.DECLINED, reason="operation_not_allowed")
+    other.append(outcome=Outcome.DECLINED, reason="operation_not_allowed")
+    saved_head = head.read_text()
+    path.write_bytes(rebuilt.read_bytes())  # a different, self-consistent chain
+    head.write_text(saved_head)
+
+    with pytest.raises(LedgerError, match="entry 2 differs from the head file"):
+        ReleaseLedger(path).append(outcome=Outcome.DECLINED, reason="operation_not_allowed")
