@@ -6,8 +6,9 @@ patient-grouped training part (that site is then monitored on its held-out patie
 the drift scenario asks for far more cases there than the public data holds, so many of
 them are jittered copies of training cases and its AUC is optimistic: it serves as a stable
 reference for drift, not as a validation), lays out each invented hospital (a policy
-that allows monitoring, an approval, a ledger) under ``out/site-data/<site>/``, registers a monitoring protocol with one window per
-month, and runs it on the chosen engine in two passes, as labels mature:
+that allows monitoring, an approval, a ledger) under ``out/site-data/<site>/``, registers a
+monitoring protocol with one window per month, and runs it on the chosen engine in two
+passes, as labels mature:
 
 1. as of the scenario's end, when the labels of its last ``pending_label_months`` months
    are still pending (each site's ``cases.csv`` is written as it stands that day);
