@@ -230,7 +230,9 @@ def _outcomes(outcome: RoundOutcome, info: Mapping[str, SiteInfo]) -> list[SiteO
     ]
     answered = {*outcome.releases, *(d.site for d in outcome.declines)}
     silent = sorted(set(info) - answered)
-    reasons = "; ".join(f.reason for f in outcome.faults) or "no reply before the timeout"
+    # Faults are known by node, not by site: a silent site gets the round's faults as context.
+    faults = "; ".join(f"node {f.node_id}: {f.reason}" for f in outcome.faults)
+    reasons = "no usable reply this round" + (f" (faults seen: {faults})" if faults else "")
     rows += [
         SiteOutcome(site=name, status="silent", reason=reasons, **_described(info[name]))
         for name in silent
