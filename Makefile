@@ -34,9 +34,9 @@ unit: venv
 test: lint typecheck unit
 
 bench: venv
-	$(BIN)/python -m simulations.benchmark_rounds
-	$(BIN)/python -m simulations.benchmark_adaptation
-	$(BIN)/python -m simulations.benchmark_drift
+	$(BIN)/python -m simulations.benchmarks.rounds
+	$(BIN)/python -m simulations.benchmarks.adaptation
+	$(BIN)/python -m simulations.benchmarks.drift
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .mypy_cache .pytest_cache .ruff_cache

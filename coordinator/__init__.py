@@ -10,30 +10,30 @@ import importlib
 from typing import TYPE_CHECKING, Any
 
 _EXPORTS: dict[str, str] = {
-    "DriftAlert": "coordinator.alerts",
-    "DriftFindings": "coordinator.window_drift",
-    "MetaAnalysis": "coordinator.meta_analysis",
-    "ResultsStore": "coordinator.results_store",
-    "RoundOutcome": "coordinator.rounds",
-    "SqliteResultsStore": "coordinator.results_store",
-    "StudyOutcome": "coordinator.rounds",
-    "StudyResults": "coordinator.study_results",
-    "WebhookAlerter": "coordinator.alerts",
-    "analyse_windows": "coordinator.window_drift",
-    "binned_ks": "coordinator.drift",
-    "build_results": "coordinator.pooling",
-    "cusum_chart": "coordinator.control_charts",
-    "ewma_chart": "coordinator.control_charts",
-    "kruskal_wallis_binned": "coordinator.comparisons",
-    "meta_analyze": "coordinator.meta_analysis",
-    "population_stability_index": "coordinator.drift",
-    "render_report": "coordinator.report",
-    "request_adaptation": "coordinator.adaptation",
-    "run_federated": "coordinator.federated",
-    "run_monitoring": "coordinator.engines",
-    "run_study": "coordinator.engines",
-    "write_drift_report": "coordinator.drift_report",
-    "write_exports": "coordinator.exports",
+    "DriftAlert": "coordinator.monitoring.alerts",
+    "DriftFindings": "coordinator.monitoring.analysis",
+    "MetaAnalysis": "coordinator.pooling.meta_analysis",
+    "ResultsStore": "coordinator.monitoring.results_store",
+    "RoundOutcome": "coordinator.runs.rounds",
+    "SqliteResultsStore": "coordinator.monitoring.results_store",
+    "StudyOutcome": "coordinator.runs.rounds",
+    "StudyResults": "coordinator.pooling.study_results",
+    "WebhookAlerter": "coordinator.monitoring.alerts",
+    "analyse_windows": "coordinator.monitoring.analysis",
+    "binned_ks": "coordinator.monitoring.drift",
+    "build_results": "coordinator.pooling.assemble",
+    "cusum_chart": "coordinator.monitoring.control_charts",
+    "ewma_chart": "coordinator.monitoring.control_charts",
+    "kruskal_wallis_binned": "coordinator.pooling.comparisons",
+    "meta_analyze": "coordinator.pooling.meta_analysis",
+    "population_stability_index": "coordinator.monitoring.drift",
+    "render_report": "coordinator.report.study_report",
+    "request_adaptation": "coordinator.adaptation.curves",
+    "run_federated": "coordinator.adaptation.federated",
+    "run_monitoring": "coordinator.runs.engines",
+    "run_study": "coordinator.runs.engines",
+    "write_drift_report": "coordinator.report.drift_report",
+    "write_exports": "coordinator.report.exports",
 }
 
 __all__ = [
@@ -79,19 +79,19 @@ def __dir__() -> list[str]:
 
 
 if TYPE_CHECKING:
-    from coordinator.adaptation import request_adaptation
-    from coordinator.alerts import DriftAlert, WebhookAlerter
-    from coordinator.comparisons import kruskal_wallis_binned
-    from coordinator.control_charts import cusum_chart, ewma_chart
-    from coordinator.drift import binned_ks, population_stability_index
-    from coordinator.drift_report import write_drift_report
-    from coordinator.engines import run_monitoring, run_study
-    from coordinator.exports import write_exports
-    from coordinator.federated import run_federated
-    from coordinator.meta_analysis import MetaAnalysis, meta_analyze
-    from coordinator.pooling import build_results
-    from coordinator.report import render_report
-    from coordinator.results_store import ResultsStore, SqliteResultsStore
-    from coordinator.rounds import RoundOutcome, StudyOutcome
-    from coordinator.study_results import StudyResults
-    from coordinator.window_drift import DriftFindings, analyse_windows
+    from coordinator.adaptation.curves import request_adaptation
+    from coordinator.adaptation.federated import run_federated
+    from coordinator.monitoring.alerts import DriftAlert, WebhookAlerter
+    from coordinator.monitoring.analysis import DriftFindings, analyse_windows
+    from coordinator.monitoring.control_charts import cusum_chart, ewma_chart
+    from coordinator.monitoring.drift import binned_ks, population_stability_index
+    from coordinator.monitoring.results_store import ResultsStore, SqliteResultsStore
+    from coordinator.pooling.assemble import build_results
+    from coordinator.pooling.comparisons import kruskal_wallis_binned
+    from coordinator.pooling.meta_analysis import MetaAnalysis, meta_analyze
+    from coordinator.pooling.study_results import StudyResults
+    from coordinator.report.drift_report import write_drift_report
+    from coordinator.report.exports import write_exports
+    from coordinator.report.study_report import render_report
+    from coordinator.runs.engines import run_monitoring, run_study
+    from coordinator.runs.rounds import RoundOutcome, StudyOutcome

@@ -1,8 +1,8 @@
 """``sitepool meta``: pool per-site results from a file by random-effects meta-analysis.
 
 Register the command on a typer app with :func:`add_meta_command`. The command reads a
-file (see :mod:`coordinator.meta_inputs`), runs the fixed-effect model and the chosen
-random-effects model (:mod:`coordinator.meta_analysis`), and prints a table or JSON.
+file (see :mod:`coordinator.pooling.meta_inputs`), runs the fixed-effect model and the chosen
+random-effects model (:mod:`coordinator.pooling.meta_analysis`), and prints a table or JSON.
 Invalid input prints one line ``error: ...`` on stderr and exits with code 2.
 """
 
@@ -17,14 +17,14 @@ from typing import Annotated
 import typer
 from pydantic import BaseModel, ConfigDict
 
-from coordinator.meta_analysis import (
+from coordinator.pooling.meta_analysis import (
     METHOD_LABELS,
     MetaAnalysis,
     Method,
     inverse_transform,
     meta_analyze,
 )
-from coordinator.meta_inputs import Measure, SiteInputs, read_site_results
+from coordinator.pooling.meta_inputs import Measure, SiteInputs, read_site_results
 from site_agent.exceptions import InputError
 from site_agent.notices import RESEARCH_NOTICE
 
@@ -53,7 +53,7 @@ class TauMethod(StrEnum):
 
 
 class MeasureChoice(StrEnum):
-    """Measures offered on the command line (see :data:`coordinator.meta_inputs.Measure`)."""
+    """Measures offered on the command line (see :data:`~.meta_inputs.Measure`)."""
 
     ESTIMATE = "estimate"
     AUC = "auc"

@@ -31,7 +31,7 @@ import torch
 
 from simulations.dataset import FEATURE_PREFIX
 from site_agent.exceptions import InputError
-from site_agent.model_bundle import (
+from site_agent.training.model_bundle import (
     DEFAULT_HIDDEN_WIDTH,
     Architecture,
     BundleManifest,

@@ -35,9 +35,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from coordinator.engines import Engine, run_monitoring
-from coordinator.monitoring import MonitoringOutcome, monitoring_windows
-from coordinator.results_store import SqliteResultsStore
+from coordinator.monitoring.results_store import SqliteResultsStore
+from coordinator.monitoring.rounds import MonitoringOutcome, monitoring_windows
+from coordinator.runs.engines import Engine, run_monitoring
 from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
 from simulations.drift_events import (
@@ -48,17 +48,17 @@ from simulations.drift_events import (
 )
 from simulations.scenario import Scenario
 from simulations.sites import development_split
-from site_agent.approvals import approve
-from site_agent.model_bundle import save_bundle
-from site_agent.policy import SitePolicy, SmallCellAction
-from site_agent.protocol import (
+from site_agent.contract.protocol import (
     EvaluationPlan,
     ModelReference,
     MonitoringPlan,
     Operation,
     StudyProtocol,
 )
+from site_agent.disclosure.approvals import approve
+from site_agent.disclosure.policy import SitePolicy, SmallCellAction
 from site_agent.service import SiteSettings
+from site_agent.training.model_bundle import save_bundle
 
 DRIFT_SCENARIO_FILE = "drift_scenario.toml"
 STORE_FILE = "monitoring.sqlite"

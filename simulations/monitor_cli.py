@@ -59,10 +59,10 @@ def monitor_command(
     ] = None,
 ) -> None:
     """Run or read the monitoring windows, analyse them and write the drift report."""
-    from coordinator.alerts import WebhookAlerter
-    from coordinator.drift_report import write_drift_report
-    from coordinator.results_store import SqliteResultsStore
-    from coordinator.window_drift import DriftSettings, alarm_alerts, analyse_windows
+    from coordinator.monitoring.alerts import WebhookAlerter
+    from coordinator.monitoring.analysis import DriftSettings, alarm_alerts, analyse_windows
+    from coordinator.monitoring.results_store import SqliteResultsStore
+    from coordinator.report.drift_report import write_drift_report
 
     console = Console(stderr=True)
     started = time.perf_counter()
@@ -100,7 +100,7 @@ def monitor_command(
     except SitepoolError as exc:
         _fail(str(exc))
     finally:
-        logging.getLogger("coordinator.monitoring").removeHandler(handler)
+        logging.getLogger("coordinator.monitoring.rounds").removeHandler(handler)
     for (site, metric), alarm in sorted(findings.first_alarms().items()):
         console.print(f"  alarm: {site}, {metric.replace('_', ' ')}, from window "
                       f"{alarm.window_number} ({alarm.window_start})")  # fmt: skip
@@ -157,7 +157,7 @@ def _log_to(path: Path, progress: Callable[[str], None]) -> logging.Handler:
         force=True,
     )
     handler = _ProgressHandler(progress)
-    logging.getLogger("coordinator.monitoring").addHandler(handler)
+    logging.getLogger("coordinator.monitoring.rounds").addHandler(handler)
     progress(f"site and coordinator logs go to {path}")
     return handler
 

@@ -2,7 +2,7 @@
 
 Federated fine-tuning is measured against the model one would get if every site's
 training pool could be put in one place. :func:`centralized_reference` splits each
-site's table exactly as its site agent does (:func:`site_agent.local_training.local_data`,
+site's table exactly as its site agent does (:func:`site_agent.training.local_training.local_data`,
 same plan, same seed), pools the training pools, fine-tunes the bundle's model on the pool
 with the same optimiser and learning rate for as many full-batch steps as the federated
 run takes in total (rounds x local steps), and measures it on each site's held-out test
@@ -22,14 +22,14 @@ import numpy as np
 import pandas as pd
 import torch
 
-from coordinator.fine_tuning import FineTuningOutcome, add_fine_tuning
-from coordinator.study_results import StudyResults
+from coordinator.adaptation.fine_tuning import FineTuningOutcome, add_fine_tuning
+from coordinator.pooling.study_results import StudyResults
+from site_agent.contract.protocol import StudyProtocol
+from site_agent.contract.release import AucRecord
 from site_agent.exceptions import ProtocolError
-from site_agent.local_training import LocalData, fine_tune, local_data, performance
-from site_agent.model_bundle import load_bundle
-from site_agent.protocol import StudyProtocol
-from site_agent.release import AucRecord
 from site_agent.service import SiteSettings
+from site_agent.training.local_training import LocalData, fine_tune, local_data, performance
+from site_agent.training.model_bundle import load_bundle
 
 
 def pooled_pools(datas: Mapping[str, LocalData]) -> LocalData:

@@ -24,20 +24,17 @@ from pathlib import Path
 
 import pandas as pd
 
-from coordinator.engines import Engine, run_study
-from coordinator.exports import write_exports
-from coordinator.pooling import SiteInfo, build_results
-from coordinator.report import render_report
-from coordinator.study_results import StudyResults
+from coordinator.pooling.assemble import SiteInfo, build_results
+from coordinator.pooling.study_results import StudyResults
+from coordinator.report.exports import write_exports
+from coordinator.report.study_report import render_report
+from coordinator.runs.engines import Engine, run_study
 from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
 from simulations.references import with_reference_lines
 from simulations.scenario import Scenario
 from simulations.sites import SyntheticSite, build_sites, development_split
-from site_agent.approvals import approve
-from site_agent.model_bundle import save_bundle
-from site_agent.policy import SitePolicy, SmallCellAction, UpdateRelease
-from site_agent.protocol import (
+from site_agent.contract.protocol import (
     AdaptationPlan,
     EvaluationPlan,
     ModelReference,
@@ -45,7 +42,10 @@ from site_agent.protocol import (
     StudyProtocol,
     uniform_edges,
 )
+from site_agent.disclosure.approvals import approve
+from site_agent.disclosure.policy import SitePolicy, SmallCellAction, UpdateRelease
 from site_agent.service import SiteSettings
+from site_agent.training.model_bundle import save_bundle
 
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"

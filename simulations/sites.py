@@ -37,7 +37,7 @@ from simulations.shifts import (
     sample_population,
 )
 from site_agent.exceptions import ScenarioError
-from site_agent.splits import grouped_train_test_split
+from site_agent.training.splits import grouped_train_test_split
 
 ID_COLUMNS = ("case_id", "patient_id", "acquired_on", "label")
 ATTRIBUTE_COLUMNS = ("scanner_vendor", "field_strength", "sex", "age_band")
@@ -146,7 +146,7 @@ def development_split(
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Split a site's table into ``(train_frame, eval_frame)`` by patient, stratified by label.
 
-    Whole patients go to one side (:func:`site_agent.splits.grouped_train_test_split`), so
+    Whole patients go to one side (:func:`site_agent.training.splits.grouped_train_test_split`), so
     no patient's observations straddle the split; about ``test_fraction`` of patients are
     held out. Model development uses the training part only; the site evaluates on the
     held-out part.

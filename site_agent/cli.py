@@ -10,17 +10,22 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
-from site_agent.approvals import approve, list_approvals
-from site_agent.disclosure import apply_policy
+from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
+from site_agent.contract.release import (
+    UNREGISTERED_PROTOCOL,
+    AucRecord,
+    EstimateRecord,
+    SiteRelease,
+)
+from site_agent.data.predictions import load_predictions
+from site_agent.disclosure.approvals import approve, list_approvals
+from site_agent.disclosure.gate import apply_policy
+from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
+from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import SitepoolError
-from site_agent.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
-from site_agent.metrics import MetricsSummary, summarize
 from site_agent.notices import RESEARCH_NOTICE
-from site_agent.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
-from site_agent.predictions import load_predictions
-from site_agent.protocol import EvaluationPlan, StudyProtocol
-from site_agent.release import UNREGISTERED_PROTOCOL, AucRecord, EstimateRecord, SiteRelease
+from site_agent.statistics.metrics import MetricsSummary, summarize
 
 site_app = typer.Typer(
     name="site",

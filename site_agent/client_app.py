@@ -13,18 +13,17 @@ from flwr.app import Array, ArrayRecord, Context, Message, MetricRecord, RecordD
 from flwr.clientapp import ClientApp
 from flwr.clientapp.typing import Mod
 
-from site_agent.disclosure import disclosure_mod
-from site_agent.exceptions import ProtocolError
-from site_agent.predictions import read_table
-from site_agent.protocol import StudyProtocol
-from site_agent.service import (
-    SITE_NAME_KEY,
-    UNNAMED_SITE,
-    SiteSettings,
-    answer_with_update,
-    declined_reply,
+from site_agent.contract.protocol import StudyProtocol
+from site_agent.contract.wire import (
+    LOCAL_UPDATE_RECORD,
+    SITE_ACTION,
+    WEIGHTS_RECORD,
+    decode_request,
+    encode_reply,
 )
-from site_agent.update_disclosure import (
+from site_agent.data.predictions import read_table
+from site_agent.disclosure.gate import disclosure_mod
+from site_agent.disclosure.update_release import (
     NUM_EXAMPLES,
     PROXIMAL_MU,
     TRAIN_ARRAYS,
@@ -32,12 +31,13 @@ from site_agent.update_disclosure import (
     TRAIN_METRICS,
     read_train_request,
 )
-from site_agent.wire import (
-    LOCAL_UPDATE_RECORD,
-    SITE_ACTION,
-    WEIGHTS_RECORD,
-    decode_request,
-    encode_reply,
+from site_agent.exceptions import ProtocolError
+from site_agent.service import (
+    SITE_NAME_KEY,
+    UNNAMED_SITE,
+    SiteSettings,
+    answer_with_update,
+    declined_reply,
 )
 
 SITE_MODS: list[Mod] = [disclosure_mod]
@@ -51,7 +51,8 @@ def evaluate(msg: Message, context: Context) -> Message:
     """Answer an ``evaluate.sitepool`` request with this site's release or a decline.
 
     A fine_tune request that asks for the site-local update gets it beside the release in
-    :data:`~site_agent.wire.LOCAL_UPDATE_RECORD`; the disclosure mod decides whether it leaves.
+    :data:`~site_agent.contract.wire.LOCAL_UPDATE_RECORD`; the disclosure mod decides whether it
+    leaves.
     """
     site = str(context.node_config.get(SITE_NAME_KEY, "")) or UNNAMED_SITE
     request_id = ""
@@ -76,12 +77,12 @@ def evaluate(msg: Message, context: Context) -> Message:
 def train(msg: Message, context: Context) -> Message:
     """Train on this site's local pool for one round of a Flower strategy.
 
-    Only reached through :func:`site_agent.disclosure.disclosure_mod`, which has checked
+    Only reached through :func:`site_agent.disclosure.gate.disclosure_mod`, which has checked
     the request and declines (scrubbed) whatever this handler raises.
     """
     # Imported here: torch costs seconds to import, and evaluation-only sites never need it.
-    from site_agent.local_training import local_data, train_round
-    from site_agent.model_bundle import load_bundle
+    from site_agent.training.local_training import local_data, train_round
+    from site_agent.training.model_bundle import load_bundle
 
     request, bundle = read_train_request(msg.content)
     protocol = StudyProtocol.from_json(request.protocol_json)
@@ -109,7 +110,7 @@ def train(msg: Message, context: Context) -> Message:
 
 
 def sent_weights(content: RecordDict) -> dict[str, np.ndarray] | None:
-    """Return the weights a request carries in :data:`~site_agent.wire.WEIGHTS_RECORD`."""
+    """Return the weights a request carries in :data:`~site_agent.contract.wire.WEIGHTS_RECORD`."""
     if WEIGHTS_RECORD not in content.array_records:
         return None
     return {k: v.numpy() for k, v in content.array_records[WEIGHTS_RECORD].items()}

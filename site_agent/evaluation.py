@@ -12,11 +12,8 @@ from collections.abc import Sequence
 import numpy as np
 from pydantic import ValidationError
 
-from site_agent.calibration import calibration_intercept_slope
-from site_agent.exceptions import InputError
-from site_agent.predictions import MISSING, Predictions
-from site_agent.protocol import EvaluationPlan
-from site_agent.release import (
+from site_agent.contract.protocol import EvaluationPlan
+from site_agent.contract.release import (
     MAX_MIX_LEVELS,
     AttributeCounts,
     AucRecord,
@@ -27,8 +24,11 @@ from site_agent.release import (
     SiteRelease,
     SubgroupRelease,
 )
-from site_agent.roc import delong, obuchowski, paired_delong
-from site_agent.summaries import Scale, compute_statistics, reader_scales
+from site_agent.data.predictions import MISSING, Predictions
+from site_agent.exceptions import InputError
+from site_agent.statistics.calibration import calibration_intercept_slope
+from site_agent.statistics.roc import delong, obuchowski, paired_delong
+from site_agent.statistics.summaries import Scale, compute_statistics, reader_scales
 
 DEFAULT_CONFIDENCE = 0.95
 

@@ -1,7 +1,8 @@
 """The site's request handler: check a request, score and evaluate locally, answer.
 
 This module knows nothing of Flower: :func:`answer` takes a decoded
-:class:`~site_agent.wire.SiteRequest` and returns a :class:`~site_agent.wire.SiteReply`.
+:class:`~site_agent.contract.wire.SiteRequest` and returns a
+:class:`~site_agent.contract.wire.SiteReply`.
 It never raises. Any failure becomes a ``declined`` reply whose reason is scrubbed
 (:func:`declined_reply`): our own errors are written without values from a site's data and
 are forwarded; any other exception is reported only by its class and a fixed text. The full
@@ -18,7 +19,17 @@ import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from site_agent.adaptation_release import AdaptationRelease
+from site_agent.contract.adaptation_release import AdaptationRelease
+from site_agent.contract.protocol import Operation, StudyProtocol
+from site_agent.contract.release import SiteRelease
+from site_agent.contract.wire import (
+    MAX_REASON_CHARS,
+    ReplyStatus,
+    SiteReply,
+    SiteRequest,
+    TimeWindow,
+)
+from site_agent.data.predictions import Predictions, read_table, validate_predictions
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import (
     BundleError,
@@ -27,10 +38,6 @@ from site_agent.exceptions import (
     ProtocolError,
     SitepoolError,
 )
-from site_agent.predictions import Predictions, read_table, validate_predictions
-from site_agent.protocol import Operation, StudyProtocol
-from site_agent.release import SiteRelease
-from site_agent.wire import MAX_REASON_CHARS, ReplyStatus, SiteReply, SiteRequest, TimeWindow
 
 logger = logging.getLogger(__name__)
 
@@ -122,7 +129,8 @@ def answer_with_update(
 ) -> tuple[SiteReply, dict[str, np.ndarray] | None]:
     """Like :func:`answer`, and also the site-local update when the request asks for one.
 
-    The update (fine-tuned minus initial weights, :func:`site_agent.local_training.local_update`)
+    The update (fine-tuned minus initial weights,
+    :func:`site_agent.training.local_training.local_update`)
     is returned raw: whether and how it may leave is the disclosure gate's decision.
     Never raises; a declined reply comes with no update.
     """
@@ -203,8 +211,13 @@ def _fine_tune(
     if request.return_update and weights is not None:
         raise ProtocolError("only site-local fine-tuning returns an update, not sent weights")
     # Imported here: torch costs seconds to import, and sites with scores never need it.
-    from site_agent.local_training import adapt_site, evaluate_state, local_data, local_update
-    from site_agent.model_bundle import load_bundle
+    from site_agent.training.local_training import (
+        adapt_site,
+        evaluate_state,
+        local_data,
+        local_update,
+    )
+    from site_agent.training.model_bundle import load_bundle
 
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
     data = local_data(read_table(settings.data_path), model, protocol.adaptation)
@@ -275,7 +288,7 @@ def _scored(frame: pd.DataFrame, protocol: StudyProtocol, bundle: bytes | None) 
     if bundle is None:
         raise BundleError("the table has no score column and no model bundle was sent")
     # Imported here: torch costs seconds to import, and sites with scores never need it.
-    from site_agent.model_bundle import load_bundle
+    from site_agent.training.model_bundle import load_bundle
 
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
     return frame.assign(score=model.predict(frame))

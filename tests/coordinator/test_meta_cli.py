@@ -14,7 +14,7 @@ import typer
 from typer.testing import CliRunner
 
 from coordinator.cli import EXIT_INPUT_ERROR, add_meta_command
-from coordinator.meta_analysis import meta_analyze
+from coordinator.pooling.meta_analysis import meta_analyze
 from site_agent.notices import RESEARCH_NOTICE
 
 # BCG trials, Colditz et al. (1994) JAMA 271:698-702, as distributed with metafor (dat.bcg).

@@ -18,10 +18,10 @@ from simulations.dataset import load_public_dataset
 from simulations.development import develop_model
 from simulations.scenario import default_scenario
 from simulations.sites import build_sites, development_split
-from site_agent.local_training import LocalData, fine_tune, local_data
-from site_agent.model_bundle import bundle_bytes, load_bundle
-from site_agent.protocol import AdaptationPlan
-from site_agent.roc import paired_delong
+from site_agent.contract.protocol import AdaptationPlan
+from site_agent.statistics.roc import paired_delong
+from site_agent.training.local_training import LocalData, fine_tune, local_data
+from site_agent.training.model_bundle import bundle_bytes, load_bundle
 
 
 def _test_scores(model: torch.nn.Module, data: LocalData) -> np.ndarray:

@@ -10,7 +10,7 @@ from simulations.development import develop_model
 from simulations.scenario import default_scenario
 from simulations.sites import build_sites, development_split
 from site_agent.exceptions import InputError
-from site_agent.model_bundle import bundle_bytes, load_bundle
+from site_agent.training.model_bundle import bundle_bytes, load_bundle
 
 SCENARIO = default_scenario()
 SITES = build_sites(SCENARIO, load_public_dataset())

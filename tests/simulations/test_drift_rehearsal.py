@@ -17,12 +17,12 @@ from typing import ClassVar
 import pytest
 from typer.testing import CliRunner
 
-from coordinator.results_store import SqliteResultsStore
-from coordinator.window_drift import DriftFindings, DriftSettings, analyse_windows
+from coordinator.monitoring.analysis import DriftFindings, DriftSettings, analyse_windows
+from coordinator.monitoring.results_store import SqliteResultsStore
 from simulations.cli import app
 from simulations.drift_rehearsal import MonitoredStudy, drift_scenario, rehearse_drift
 from simulations.scenario import Scenario
-from site_agent.ledger import ReleaseLedger
+from site_agent.disclosure.ledger import ReleaseLedger
 from site_agent.notices import RESEARCH_NOTICE
 
 SCANNER_SITE = "Kestrel Valley Hospital"

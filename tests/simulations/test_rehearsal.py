@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 from sklearn.metrics import roc_auc_score
 
-from coordinator.study_results import StudyResults
+from coordinator.pooling.study_results import StudyResults
 from simulations.rehearsal import rehearse
 from simulations.scenario import default_scenario
-from site_agent.ledger import verify_ledger
+from site_agent.disclosure.ledger import verify_ledger
 from site_agent.notices import RESEARCH_NOTICE
 
 
@@ -45,7 +45,7 @@ def test_rehearsal_site_auc_matches_sklearn_on_the_site_table(
     default_run: tuple[StudyResults, Path],
 ) -> None:
     """Each site's released DeLong AUC equals scikit-learn's AUC of the model on its table."""
-    from site_agent.model_bundle import load_bundle
+    from site_agent.training.model_bundle import load_bundle
 
     results, out = default_run
     bundle = load_bundle(out / "model" / "model-bundle.zip")

@@ -12,9 +12,9 @@ import pytest
 from typer.testing import CliRunner
 
 from simulations.cli import app
+from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
+from site_agent.contract.release import SiteRelease
 from site_agent.notices import RESEARCH_NOTICE
-from site_agent.protocol import EvaluationPlan, StudyProtocol
-from site_agent.release import SiteRelease
 
 EXAMPLE = Path(__file__).parents[2] / "examples" / "northgate_predictions.csv"
 runner = CliRunner()

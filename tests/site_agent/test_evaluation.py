@@ -10,11 +10,11 @@ import pandas as pd
 import pytest
 from sklearn.metrics import roc_auc_score
 
+from site_agent.contract.protocol import EvaluationPlan
+from site_agent.contract.release import UNREGISTERED_PROTOCOL
+from site_agent.data.predictions import MISSING, load_predictions, validate_predictions
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import InputError
-from site_agent.predictions import MISSING, load_predictions, validate_predictions
-from site_agent.protocol import EvaluationPlan
-from site_agent.release import UNREGISTERED_PROTOCOL
 
 EXAMPLE = Path(__file__).parents[2] / "examples" / "northgate_predictions.csv"
 PLAN = EvaluationPlan(thresholds=(0.5,), subgroups=("scanner_vendor", "sex"))

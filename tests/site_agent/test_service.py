@@ -15,19 +15,19 @@ import numpy as np
 import pytest
 import torch
 
-from site_agent.evaluation import evaluate_site
-from site_agent.exceptions import InputError
-from site_agent.model_bundle import BundleManifest, build_model, bundle_bytes, load_bundle
-from site_agent.predictions import load_predictions, read_table, validate_predictions
-from site_agent.protocol import (
+from site_agent.contract.protocol import (
     EvaluationPlan,
     ModelReference,
     Operation,
     StudyProtocol,
     uniform_edges,
 )
+from site_agent.contract.wire import ReplyStatus, SiteRequest
+from site_agent.data.predictions import load_predictions, read_table, validate_predictions
+from site_agent.evaluation import evaluate_site
+from site_agent.exceptions import InputError
 from site_agent.service import SiteSettings, answer, declined_reply
-from site_agent.wire import ReplyStatus, SiteRequest
+from site_agent.training.model_bundle import BundleManifest, build_model, bundle_bytes, load_bundle
 
 PLAN = EvaluationPlan(thresholds=(0.4, 0.6), histogram_edges=uniform_edges(10))
 

@@ -1,0 +1,1 @@
+"""Adaptation: federated rounds, fine-tuning requests and adaptation-budget curves."""

@@ -1,0 +1,1 @@
+"""Monitoring over time windows: rounds, drift statistics, control charts, store, alerts."""

@@ -1,0 +1,1 @@
+"""Pooling releases into study results: estimates, meta-analysis and comparisons."""

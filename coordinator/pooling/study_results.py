@@ -1,0 +1,208 @@
+"""The study results document: everything a study produced, as written to ``results.json``.
+
+The report, the CSV exports and the JSON all render from this one model, so every
+number in the report is also in the JSON. Metrics are kept as a tidy long table of
+:class:`MetricRow` (one estimate with its interval per row), which is what people
+load into a spreadsheet and what the CSV files hold.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from pathlib import Path
+from typing import Annotated, Any
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+
+from site_agent.notices import RESEARCH_NOTICE
+
+
+def _none_is_nan(value: Any) -> Any:
+    return float("nan") if value is None else value
+
+
+Number = Annotated[float, BeforeValidator(_none_is_nan)]
+"""A float that is written to JSON as ``null`` when undefined (NaN) and read back as NaN."""
+
+
+class _Record(BaseModel):
+    model_config = ConfigDict(
+        frozen=True, extra="forbid", allow_inf_nan=True, ser_json_inf_nan="null"
+    )
+
+
+class MetricRow(_Record):
+    """One estimate with its interval, for one site (or the pool) and one metric."""
+
+    site: str = Field(description="Site name, or 'pooled' for the merged statistics.")
+    metric: str = Field(description="e.g. auc, sensitivity, specificity, ppv, npv, kappa.")
+    method: str = Field(description="Interval method, e.g. wilson, delong, delong-logit.")
+    estimate: Number
+    lower: Number
+    upper: Number
+    threshold: float | None = None
+    n: int = 0
+    subgroup: str | None = Field(default=None, description="'attribute=level' or None.")
+    reason: str | None = Field(default=None, description="Why the estimate is undefined.")
+    bound: float | None = Field(
+        default=None, description="Histogram AUC only: largest possible binning error."
+    )
+
+
+class CurvePoints(_Record):
+    """An ROC curve (x = 1 - specificity, y = sensitivity) or a calibration curve."""
+
+    site: str
+    kind: str = Field(description="'roc' or 'calibration'.")
+    x: list[float]
+    y: list[float]
+    counts: list[int] | None = Field(default=None, description="Cases per calibration bin.")
+
+
+class TwoByTwo(_Record):
+    """Cross tabulation of the index test (at a threshold) by the reference standard."""
+
+    site: str
+    threshold: float
+    tp: int
+    fp: int
+    fn: int
+    tn: int
+
+
+class ParticipantFlow(_Record):
+    """Flow of observations at one site (STARD 2015 item 19)."""
+
+    site: str
+    observations: int
+    patients: int
+    with_reference_standard: int
+    pending_reference_standard: int
+    positives: int
+    negatives: int
+    resampled: int = Field(default=0, description="Simulation only: resampled cases.")
+
+
+class MetaRow(_Record):
+    """One random-effects (or fixed-effect) meta-analysis across sites."""
+
+    metric: str
+    method: str
+    scale: str
+    estimate: Number
+    lower: Number
+    upper: Number
+    prediction_lower: Number
+    prediction_upper: Number
+    tau2: Number
+    i2: Number
+    h2: Number
+    q: Number
+    q_pvalue: Number
+    k: int
+    hksj: bool = False
+    note: str | None = None
+    subgroup: str | None = Field(
+        default=None, description="Sites sharing a site attribute, 'attribute=level'."
+    )
+
+
+class DistributionTest(_Record):
+    """A test across sites of whether scores follow one distribution (Kruskal–Wallis)."""
+
+    cases: str = Field(description="'all cases', 'positives' or 'negatives'.")
+    method: str
+    statistic: Number
+    df: int
+    p_value: Number
+    n: int
+    sites: int
+    reason: str | None = None
+
+
+class SiteOutcome(_Record):
+    """What happened with one site in the study."""
+
+    site: str
+    status: str = Field(description="'released', 'declined' or 'silent' (no reply).")
+    reason: str | None = None
+    role: str = Field(default="external", description="'development' or 'external'.")
+    description: str | None = Field(default=None, description="Shift description (rehearsal).")
+
+
+class AdaptationRow(_Record):
+    """One point of an adaptation curve: a metric after fine-tuning on n local cases.
+
+    Combined over the repeats (seeds) by Rubin's rules on the logit scale; see
+    :func:`coordinator.adaptation.curves.combine_over_seeds`.
+    """
+
+    site: str = Field(description="Site name, or 'pooled' (mean over sites).")
+    metric: str = Field(description="auc, sensitivity or specificity.")
+    n_cases: int | None = Field(description="Local training cases asked for; None: whole pool.")
+    n_used: Number = Field(description="Mean cases actually used (whole patients).")
+    estimate: Number
+    lower: Number
+    upper: Number
+    seed_min: Number = Field(description="Smallest estimate over the seeds.")
+    seed_max: Number = Field(description="Largest estimate over the seeds.")
+    repeats: int = 0
+    threshold: float | None = None
+    method: str = "rubin-logit"
+    reason: str | None = None
+
+
+class AdequateCases(_Record):
+    """The smallest number of local cases whose mean AUC comes within the margin."""
+
+    site: str
+    reference_auc: Number = Field(description="The development site's AUC.")
+    margin: float
+    n_cases: int | None = Field(description="Smallest adequate count; None if none was.")
+    whole_pool: bool = Field(default=False, description="Only the whole pool was adequate.")
+    reason: str | None = None
+
+
+class ReferenceLine(_Record):
+    """One site's AUC under one of the four reference lines, on its held-out test set."""
+
+    site: str
+    line: str = Field(description="none, site-local, federated or centralized.")
+    estimate: Number
+    lower: Number
+    upper: Number
+    method: str
+    n: int = 0
+    reason: str | None = None
+
+
+class StudyResults(_Record):
+    """Everything a study produced."""
+
+    study_id: str
+    title: str
+    protocol_hash: str
+    created_at: datetime
+    engine: str
+    notice: str = RESEARCH_NOTICE
+    sites: list[SiteOutcome]
+    metrics: list[MetricRow]
+    curves: list[CurvePoints] = Field(default_factory=list)
+    two_by_two: list[TwoByTwo] = Field(default_factory=list)
+    flow: list[ParticipantFlow] = Field(default_factory=list)
+    meta: list[MetaRow] = Field(default_factory=list)
+    distribution_tests: list[DistributionTest] = Field(default_factory=list)
+    adaptation: list[AdaptationRow] = Field(default_factory=list)
+    adequate_cases: list[AdequateCases] = Field(default_factory=list)
+    reference_lines: list[ReferenceLine] = Field(default_factory=list)
+    findings: list[str] = Field(default_factory=list, description="Plain-language findings.")
+    notes: list[str] = Field(default_factory=list, description="Caveats, e.g. resampling.")
+
+    def write_json(self, path: Path) -> None:
+        """Write the results as indented JSON."""
+        path.write_text(self.model_dump_json(indent=2))
+
+    @classmethod
+    def read_json(cls, path: Path) -> StudyResults:
+        """Read results written by :meth:`write_json`."""
+        return cls.model_validate_json(path.read_text())

@@ -1,0 +1,1 @@
+"""Reports: the study report, plots, adaptation section, drift report and CSV exports."""

@@ -1,0 +1,1 @@
+"""Benchmark scripts (make bench): figures go in the README, never into tests."""

@@ -1,0 +1,1 @@
+"""The wire contract: study protocol, requests and replies, releases that may leave a site."""

@@ -1,0 +1,1 @@
+"""A site's own data: the predictions table and its validation."""

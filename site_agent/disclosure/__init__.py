@@ -1,0 +1,1 @@
+"""Disclosure control: policy, the one gate, update release, privacy budget, approvals, ledger."""

@@ -1,0 +1,1 @@
+"""Site statistics: summaries, ROC and AUC, proportions, agreement, calibration, metrics."""

@@ -1,0 +1,585 @@
+"""Mergeable sufficient statistics: counts from which every pooled metric is derived.
+
+A site computes these from its predictions table; the coordinator adds them up across
+sites. Every model here holds counts, sums and bin edges only, never a per-case value,
+and every list is as long as a set of bins, thresholds or categories fixed by the plan.
+Merging the statistics of two disjoint sets of cases (patients are distinct across sites)
+gives exactly the statistics of their union; that is what makes them *sufficient* for
+pooled sensitivity, specificity, histogram AUC, calibration and agreement.
+
+Conventions
+-----------
+- A case is called positive at threshold ``t`` when ``score >= t`` (common practice).
+- Bin ``i`` of edges ``e`` holds scores in ``[e[i], e[i+1])``; the last bin is closed,
+  ``[e[-2], 1]``.
+- Label metrics (confusion counts, class histograms, calibration) use only cases whose
+  reference standard is known; the label-free histogram ``all`` counts every case.
+- Agreement tables count cases where both raters made a call. A reader is *binary* when
+  every call it made at the site is 0 or 1, otherwise *ordinal*. Ordinal tables span the
+  contiguous integer range of the calls seen (one level if all calls agree), so that
+  category index distances equal call distances; merging two ordinal tables widens both
+  to the union of their ranges (empty rows and columns leave the kappas unchanged).
+- Validators check shapes (one entry per bin, threshold or category; counts are
+  non-negative integers) but do not cross-check counts against each other: a site's
+  disclosure step may add noise to released counts.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from itertools import pairwise
+from typing import Literal, TypeVar
+
+import numpy as np
+import numpy.typing as npt
+from pydantic import BaseModel, ConfigDict, Field, NonNegativeInt, model_validator
+
+from site_agent.contract.protocol import EvaluationPlan, uniform_edges
+from site_agent.data.predictions import MISSING, Predictions
+from site_agent.exceptions import InputError
+from site_agent.statistics.proportions import ClusterMoments
+
+MAX_BINS = 1000
+"""Most bins a histogram may have: keeps a release from carrying per-case values."""
+MAX_THRESHOLDS = 100
+MAX_CATEGORIES = 20
+"""Most levels an ordinal agreement table may span."""
+MAX_AGREEMENT_TABLES = 200
+MODEL_CATEGORY = "model_category"
+"""Rater name of the model's ordinal ``category`` output in agreement tables."""
+
+Scale = Literal["binary", "ordinal"]
+ProportionName = Literal["sensitivity", "specificity", "ppv", "npv"]
+PROPORTIONS: tuple[ProportionName, ...] = ("sensitivity", "specificity", "ppv", "npv")
+
+
+class _Stat(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
+
+
+def model_rater(threshold: float) -> str:
+    """Return the rater name of the model binarised at ``threshold`` (``model@0.5``)."""
+    return f"model@{threshold:g}"
+
+
+def _check_edges(edges: tuple[float, ...]) -> None:
+    if not 2 <= len(edges) <= MAX_BINS + 1:  # one bin: a site merged every bin
+        raise ValueError(f"edges must define between 1 and {MAX_BINS} bins")
+    if edges[0] != 0.0 or edges[-1] != 1.0:
+        raise ValueError("edges must start at 0 and end at 1")
+    if any(b <= a for a, b in pairwise(edges)):
+        raise ValueError("edges must increase strictly")
+
+
+def _same(kind: str, a: object, b: object) -> None:
+    if a != b:
+        raise InputError(f"cannot merge statistics computed with different {kind}")
+
+
+def common_edges(a: tuple[float, ...], b: tuple[float, ...]) -> tuple[float, ...]:
+    """Return the edges two binnings share, for re-binning both exactly.
+
+    Both binnings start at 0 and end at 1, so at worst one bin, [0, 1], remains: the merged
+    histogram then carries no ordering, and pooled AUCs are taken from the sites' own
+    histograms instead (:func:`site_agent.statistics.roc.mixed_histogram_auc`).
+    """
+    return tuple(sorted(set(a) & set(b)))
+
+
+def _groups_for(old: tuple[float, ...], new: tuple[float, ...]) -> list[tuple[int, int]]:
+    """Return, for each bin of ``new``, the range of ``old`` bins it covers."""
+    position = {edge: i for i, edge in enumerate(old)}
+    if any(edge not in position for edge in new) or new[0] != old[0] or new[-1] != old[-1]:
+        raise InputError("cannot re-bin: the new edges are not a subset of the old ones")
+    return [(position[lo], position[hi]) for lo, hi in pairwise(new)]
+
+
+_Number = TypeVar("_Number", int, float)
+
+
+def _regroup(values: tuple[_Number, ...], groups: list[tuple[int, int]]) -> tuple[_Number, ...]:
+    return tuple(sum(values[lo:hi]) for lo, hi in groups)
+
+
+def _add(a: tuple[int, ...], b: tuple[int, ...]) -> tuple[int, ...]:
+    return tuple(x + y for x, y in zip(a, b, strict=True))
+
+
+def _addf(a: tuple[float, ...], b: tuple[float, ...]) -> tuple[float, ...]:
+    return tuple(x + y for x, y in zip(a, b, strict=True))
+
+
+def _bin_index(scores: npt.NDArray[np.float64], edges: tuple[float, ...]) -> npt.NDArray[np.intp]:
+    """Return the bin of each score: ``[e[i], e[i+1])``, the last bin closed at 1."""
+    index = np.searchsorted(np.asarray(edges), scores, side="right") - 1
+    return np.clip(index, 0, len(edges) - 2)
+
+
+def _bin_counts(index: npt.NDArray[np.intp], bins: int) -> tuple[int, ...]:
+    return tuple(int(c) for c in np.bincount(index, minlength=bins))
+
+
+def _bin_sums(
+    index: npt.NDArray[np.intp], weights: npt.NDArray[np.float64], bins: int
+) -> tuple[float, ...]:
+    return tuple(float(s) for s in np.bincount(index, weights=weights, minlength=bins))
+
+
+class PatientMoments(_Stat):
+    """Per-patient moments of one proportion (see :class:`~.proportions.ClusterMoments`).
+
+    With ``a_i`` successes among ``m_i`` trials for patient ``i``: the number of patients
+    with at least one trial, ``Σa_i²``, ``Σa_i·m_i`` and ``Σm_i²``. Moments of disjoint sets
+    of patients add.
+    """
+
+    clusters: NonNegativeInt = 0
+    sum_a2: NonNegativeInt = 0
+    sum_am: NonNegativeInt = 0
+    sum_m2: NonNegativeInt = 0
+
+    def merge(self, other: PatientMoments) -> PatientMoments:
+        """Return the moments of the union of two disjoint sets of patients."""
+        return PatientMoments(
+            clusters=self.clusters + other.clusters,
+            sum_a2=self.sum_a2 + other.sum_a2,
+            sum_am=self.sum_am + other.sum_am,
+            sum_m2=self.sum_m2 + other.sum_m2,
+        )
+
+
+class ConfusionCounts(_Stat):
+    """Confusion counts at one threshold, with per-patient moments of each proportion."""
+
+    threshold: float = Field(ge=0.0, le=1.0)
+    tp: NonNegativeInt
+    fp: NonNegativeInt
+    fn: NonNegativeInt
+    tn: NonNegativeInt
+    sensitivity: PatientMoments = Field(default_factory=PatientMoments)
+    specificity: PatientMoments = Field(default_factory=PatientMoments)
+    ppv: PatientMoments = Field(default_factory=PatientMoments)
+    npv: PatientMoments = Field(default_factory=PatientMoments)
+
+    def counts(self, name: ProportionName) -> tuple[int, int]:
+        """Return (successes, trials) of a proportion: e.g. sensitivity is (tp, tp + fn)."""
+        return {
+            "sensitivity": (self.tp, self.tp + self.fn),
+            "specificity": (self.tn, self.tn + self.fp),
+            "ppv": (self.tp, self.tp + self.fp),
+            "npv": (self.tn, self.tn + self.fn),
+        }[name]
+
+    def moments(self, name: ProportionName) -> ClusterMoments:
+        """Return the full cluster moments of a proportion for the clustered interval."""
+        successes, total = self.counts(name)
+        pm: PatientMoments = getattr(self, name)
+        return ClusterMoments(
+            successes, total, pm.clusters, float(pm.sum_a2), float(pm.sum_am), float(pm.sum_m2)
+        )
+
+    def merge(self, other: ConfusionCounts) -> ConfusionCounts:
+        """Return the counts of the union of two disjoint sets of cases."""
+        _same("thresholds", self.threshold, other.threshold)
+        return ConfusionCounts(
+            threshold=self.threshold,
+            tp=self.tp + other.tp,
+            fp=self.fp + other.fp,
+            fn=self.fn + other.fn,
+            tn=self.tn + other.tn,
+            sensitivity=self.sensitivity.merge(other.sensitivity),
+            specificity=self.specificity.merge(other.specificity),
+            ppv=self.ppv.merge(other.ppv),
+            npv=self.npv.merge(other.npv),
+        )
+
+
+class ScoreHistogram(_Stat):
+    """Score counts per bin: diseased, non-diseased, and every case (pending labels too)."""
+
+    edges: tuple[float, ...]
+    positive: tuple[NonNegativeInt, ...]
+    negative: tuple[NonNegativeInt, ...]
+    all: tuple[NonNegativeInt, ...]
+
+    @model_validator(mode="after")
+    def _lengths_match_edges(self) -> ScoreHistogram:
+        _check_edges(self.edges)
+        bins = len(self.edges) - 1
+        if not len(self.positive) == len(self.negative) == len(self.all) == bins:
+            raise ValueError("histogram counts must have one entry per bin")
+        return self
+
+    def coarsened(self, edges: tuple[float, ...]) -> ScoreHistogram:
+        """Return the histogram on ``edges``, a subset of this one's edges (exact)."""
+        groups = _groups_for(self.edges, edges)
+        return ScoreHistogram(
+            edges=edges,
+            positive=_regroup(self.positive, groups),
+            negative=_regroup(self.negative, groups),
+            all=_regroup(self.all, groups),
+        )
+
+    def merge(self, other: ScoreHistogram) -> ScoreHistogram:
+        """Return the histogram of the union of two disjoint sets of cases.
+
+        Histograms whose edges differ (a site's disclosure step may merge small bins) are
+        first re-binned to the edges both kept, which is exact.
+        """
+        if self.edges != other.edges:
+            edges = common_edges(self.edges, other.edges)
+            return self.coarsened(edges).merge(other.coarsened(edges))
+        return ScoreHistogram(
+            edges=self.edges,
+            positive=_add(self.positive, other.positive),
+            negative=_add(self.negative, other.negative),
+            all=_add(self.all, other.all),
+        )
+
+
+class CalibrationBins(_Stat):
+    """Per-bin sums of labelled cases: count, Σscore, Σlabel and Σ(score − label)²."""
+
+    edges: tuple[float, ...]
+    count: tuple[NonNegativeInt, ...]
+    score_sum: tuple[float, ...]
+    label_sum: tuple[NonNegativeInt, ...]
+    squared_error_sum: tuple[float, ...]
+
+    @model_validator(mode="after")
+    def _lengths_match_edges(self) -> CalibrationBins:
+        _check_edges(self.edges)
+        bins = len(self.edges) - 1
+        fields = (self.count, self.score_sum, self.label_sum, self.squared_error_sum)
+        if any(len(f) != bins for f in fields):
+            raise ValueError("calibration sums must have one entry per bin")
+        return self
+
+    def coarsened(self, edges: tuple[float, ...]) -> CalibrationBins:
+        """Return the sums on ``edges``, a subset of this one's edges (exact)."""
+        groups = _groups_for(self.edges, edges)
+        return CalibrationBins(
+            edges=edges,
+            count=_regroup(self.count, groups),
+            score_sum=_regroup(self.score_sum, groups),
+            label_sum=_regroup(self.label_sum, groups),
+            squared_error_sum=_regroup(self.squared_error_sum, groups),
+        )
+
+    def merge(self, other: CalibrationBins) -> CalibrationBins:
+        """Return the sums of the union of two disjoint sets of cases (re-binned as needed)."""
+        if self.edges != other.edges:
+            edges = common_edges(self.edges, other.edges)
+            return self.coarsened(edges).merge(other.coarsened(edges))
+        return CalibrationBins(
+            edges=self.edges,
+            count=_add(self.count, other.count),
+            score_sum=_addf(self.score_sum, other.score_sum),
+            label_sum=_add(self.label_sum, other.label_sum),
+            squared_error_sum=_addf(self.squared_error_sum, other.squared_error_sum),
+        )
+
+
+class AgreementTable(_Stat):
+    """A square table of two raters' calls: ``counts[i][j]`` cases rated ``i`` and ``j``."""
+
+    raters: tuple[str, str]
+    scale: Scale
+    categories: tuple[int, ...]
+    counts: tuple[tuple[NonNegativeInt, ...], ...]
+
+    @model_validator(mode="after")
+    def _square_over_categories(self) -> AgreementTable:
+        k = len(self.categories)
+        if self.scale == "binary" and self.categories != (0, 1):
+            raise ValueError("a binary agreement table has categories (0, 1)")
+        if not 1 <= k <= MAX_CATEGORIES:
+            raise ValueError(f"an agreement table has between 1 and {MAX_CATEGORIES} categories")
+        if list(self.categories) != list(range(self.categories[0], self.categories[0] + k)):
+            raise ValueError("agreement categories must be consecutive integers")
+        if len(self.counts) != k or any(len(row) != k for row in self.counts):
+            raise ValueError("agreement counts must be a square table over the categories")
+        return self
+
+    @property
+    def n(self) -> int:
+        """Number of cases both raters called."""
+        return sum(sum(row) for row in self.counts)
+
+    def matrix(self) -> npt.NDArray[np.int64]:
+        """Return the counts as a ``k × k`` integer array."""
+        return np.asarray(self.counts, dtype=np.int64).reshape(len(self.categories), -1)
+
+    def _widened(self, low: int, high: int) -> npt.NDArray[np.int64]:
+        out = np.zeros((high - low + 1, high - low + 1), dtype=np.int64)
+        start = self.categories[0] - low
+        k = len(self.categories)
+        out[start : start + k, start : start + k] = self.matrix()
+        return out
+
+    def merge(self, other: AgreementTable) -> AgreementTable:
+        """Return the table of the union of two disjoint sets of cases.
+
+        Raises
+        ------
+        InputError
+            If the raters or the scale differ, or if the union of two ordinal tables
+            spans more than :data:`MAX_CATEGORIES` levels.
+        """
+        _same("agreement raters", self.raters, other.raters)
+        _same("agreement scales (binary and ordinal)", self.scale, other.scale)
+        low = min(self.categories[0], other.categories[0])
+        high = max(self.categories[-1], other.categories[-1])
+        if high - low + 1 > MAX_CATEGORIES:
+            raise InputError(f"merged ordinal calls span more than {MAX_CATEGORIES} levels")
+        total = self._widened(low, high) + other._widened(low, high)
+        return AgreementTable(
+            raters=self.raters,
+            scale=self.scale,
+            categories=tuple(range(low, high + 1)),
+            counts=tuple(tuple(int(c) for c in row) for row in total),
+        )
+
+
+class SufficientStatistics(_Stat):
+    """Everything a site releases about its cases as a whole, in mergeable form."""
+
+    n_observations: NonNegativeInt
+    n_positive: NonNegativeInt
+    n_negative: NonNegativeInt
+    n_pending: NonNegativeInt
+    n_patients: NonNegativeInt
+    confusion: tuple[ConfusionCounts, ...] = Field(max_length=MAX_THRESHOLDS)
+    histogram: ScoreHistogram
+    calibration: CalibrationBins
+    agreement: tuple[AgreementTable, ...] = Field(default=(), max_length=MAX_AGREEMENT_TABLES)
+
+    @model_validator(mode="after")
+    def _thresholds_and_tables_ordered(self) -> SufficientStatistics:
+        if not self.confusion:
+            raise ValueError("at least one threshold is needed")
+        thresholds = [c.threshold for c in self.confusion]
+        if any(b <= a for a, b in pairwise(thresholds)):
+            raise ValueError("thresholds must increase strictly")
+        raters = [t.raters for t in self.agreement]
+        if raters != sorted(set(raters)):
+            raise ValueError("agreement tables must be unique and sorted by raters")
+        return self
+
+    @property
+    def thresholds(self) -> tuple[float, ...]:
+        """Thresholds of the confusion counts, increasing."""
+        return tuple(c.threshold for c in self.confusion)
+
+    def merge(self, other: SufficientStatistics) -> SufficientStatistics:
+        """Return the statistics of the union of two disjoint sets of cases.
+
+        Agreement tables are matched by their raters; a table only one side has is kept.
+
+        Raises
+        ------
+        InputError
+            If thresholds, histogram edges, calibration bins or a table's scale differ.
+        """
+        _same("thresholds", self.thresholds, other.thresholds)
+        tables = {t.raters: t for t in self.agreement}
+        for t in other.agreement:
+            tables[t.raters] = tables[t.raters].merge(t) if t.raters in tables else t
+        return SufficientStatistics(
+            n_observations=self.n_observations + other.n_observations,
+            n_positive=self.n_positive + other.n_positive,
+            n_negative=self.n_negative + other.n_negative,
+            n_pending=self.n_pending + other.n_pending,
+            n_patients=self.n_patients + other.n_patients,
+            confusion=tuple(
+                a.merge(b) for a, b in zip(self.confusion, other.confusion, strict=True)
+            ),
+            histogram=self.histogram.merge(other.histogram),
+            calibration=self.calibration.merge(other.calibration),
+            agreement=tuple(tables[k] for k in sorted(tables)),
+        )
+
+
+def reader_scales(predictions: Predictions) -> dict[str, Scale]:
+    """Return each reader's scale: binary when every call made is 0 or 1, else ordinal.
+
+    Readers who made no call at all are left out.
+    """
+    scales: dict[str, Scale] = {}
+    for name, calls in predictions.readers.items():
+        made = calls[calls != MISSING]
+        if made.size:
+            scales[name] = "binary" if bool(np.all(made <= 1)) else "ordinal"
+    return scales
+
+
+def compute_statistics(
+    predictions: Predictions,
+    plan: EvaluationPlan,
+    *,
+    scales: Mapping[str, Scale] | None = None,
+) -> SufficientStatistics:
+    """Compute a site's sufficient statistics under an evaluation plan.
+
+    Parameters
+    ----------
+    predictions
+        The validated predictions table (any number of rows, zero included).
+    plan
+        Thresholds, histogram edges and calibration bins.
+    scales
+        Scale of each reader; by default taken from ``predictions`` with
+        :func:`reader_scales`. Subgroups pass the whole site's scales so that a
+        subgroup's tables match the site's.
+
+    Raises
+    ------
+    InputError
+        If ordinal calls span more than :data:`MAX_CATEGORIES` levels.
+    """
+    scales = reader_scales(predictions) if scales is None else dict(scales)
+    labelled = predictions.labelled
+    positive = labelled & (predictions.label == 1)
+    negative = labelled & (predictions.label == 0)
+    _, patient = np.unique(predictions.patient_id.astype(str), return_inverse=True)
+    patient = patient.reshape(-1)
+    n_patients = int(np.unique(patient).size)
+
+    confusion = tuple(
+        _confusion(t, predictions.score >= t, positive, negative, patient) for t in plan.thresholds
+    )
+    edges = plan.histogram_edges
+    bins = len(edges) - 1
+    hist_index = _bin_index(predictions.score, edges)
+    histogram = ScoreHistogram(
+        edges=edges,
+        positive=_bin_counts(hist_index[positive], bins),
+        negative=_bin_counts(hist_index[negative], bins),
+        all=_bin_counts(hist_index, bins),
+    )
+    cal_edges = uniform_edges(plan.calibration_bins)
+    cal_index = _bin_index(predictions.score[labelled], cal_edges)
+    scores = predictions.score[labelled]
+    labels = predictions.label[labelled].astype(np.float64)
+    calibration = CalibrationBins(
+        edges=cal_edges,
+        count=_bin_counts(cal_index, plan.calibration_bins),
+        score_sum=_bin_sums(cal_index, scores, plan.calibration_bins),
+        label_sum=tuple(round(s) for s in _bin_sums(cal_index, labels, plan.calibration_bins)),
+        squared_error_sum=_bin_sums(cal_index, (scores - labels) ** 2, plan.calibration_bins),
+    )
+    return SufficientStatistics(
+        n_observations=len(predictions),
+        n_positive=int(positive.sum()),
+        n_negative=int(negative.sum()),
+        n_pending=int((~labelled).sum()),
+        n_patients=n_patients,
+        confusion=confusion,
+        histogram=histogram,
+        calibration=calibration,
+        agreement=_agreement_tables(predictions, plan, scales),
+    )
+
+
+def _confusion(
+    threshold: float,
+    called: npt.NDArray[np.bool_],
+    positive: npt.NDArray[np.bool_],
+    negative: npt.NDArray[np.bool_],
+    patient: npt.NDArray[np.intp],
+) -> ConfusionCounts:
+    def moments(success: npt.NDArray[np.bool_], trial: npt.NDArray[np.bool_]) -> PatientMoments:
+        # a_i successes among m_i trials per patient (Rao & Scott 1992; see
+        # site_agent.statistics.proportions.ClusterMoments); patients without a trial are left out.
+        a = np.bincount(patient[success], minlength=1).astype(np.int64)
+        m = np.bincount(patient[trial], minlength=1).astype(np.int64)
+        a = np.pad(a, (0, max(m.size - a.size, 0)))[m > 0]
+        m = m[m > 0]
+        return PatientMoments(
+            clusters=int(m.size),
+            sum_a2=int(np.dot(a, a)),
+            sum_am=int(np.dot(a, m)),
+            sum_m2=int(np.dot(m, m)),
+        )
+
+    tp, fn = positive & called, positive & ~called
+    fp, tn = negative & called, negative & ~called
+    return ConfusionCounts(
+        threshold=threshold,
+        tp=int(tp.sum()),
+        fp=int(fp.sum()),
+        fn=int(fn.sum()),
+        tn=int(tn.sum()),
+        sensitivity=moments(tp, positive),
+        specificity=moments(tn, negative),
+        ppv=moments(tp, tp | fp),
+        npv=moments(tn, tn | fn),
+    )
+
+
+def _agreement_tables(
+    predictions: Predictions, plan: EvaluationPlan, scales: Mapping[str, Scale]
+) -> tuple[AgreementTable, ...]:
+    readers = {name: predictions.readers[name] for name in scales if name in predictions.readers}
+    binary = [r for r in readers if scales[r] == "binary"]
+    ordinal = [r for r in readers if scales[r] == "ordinal"]
+    tables: list[AgreementTable] = []
+    for t in plan.thresholds:
+        model_calls = (predictions.score >= t).astype(np.int64)
+        for r in binary:
+            tables.append(_binary_table((model_rater(t), r), model_calls, readers[r]))
+    for i, a in enumerate(binary):
+        for b in binary[i + 1 :]:
+            tables.append(_binary_table((a, b), readers[a], readers[b]))
+    if predictions.category is not None:
+        for r in ordinal:
+            table = _ordinal_table((MODEL_CATEGORY, r), predictions.category, readers[r])
+            tables.extend([table] if table is not None else [])
+    for i, a in enumerate(ordinal):
+        for b in ordinal[i + 1 :]:
+            table = _ordinal_table((a, b), readers[a], readers[b])
+            tables.extend([table] if table is not None else [])
+    return tuple(sorted(tables, key=lambda t: t.raters))
+
+
+def _table(
+    raters: tuple[str, str],
+    scale: Scale,
+    low: int,
+    k: int,
+    a: npt.NDArray[np.int64],
+    b: npt.NDArray[np.int64],
+) -> AgreementTable:
+    counts = np.zeros((k, k), dtype=np.int64)
+    np.add.at(counts, (a - low, b - low), 1)
+    return AgreementTable(
+        raters=raters,
+        scale=scale,
+        categories=tuple(range(low, low + k)),
+        counts=tuple(tuple(int(c) for c in row) for row in counts),
+    )
+
+
+def _binary_table(
+    raters: tuple[str, str], a: npt.NDArray[np.int64], b: npt.NDArray[np.int64]
+) -> AgreementTable:
+    both = (a != MISSING) & (b != MISSING)
+    # A binary rater's calls are 0 or 1 (checked by reader_scales); clip guards the model.
+    return _table(raters, "binary", 0, 2, np.clip(a[both], 0, 1), np.clip(b[both], 0, 1))
+
+
+def _ordinal_table(
+    raters: tuple[str, str], a: npt.NDArray[np.int64], b: npt.NDArray[np.int64]
+) -> AgreementTable | None:
+    both = (a != MISSING) & (b != MISSING)
+    if not both.any():
+        return None
+    a, b = a[both], b[both]
+    low = int(min(a.min(), b.min()))
+    high = int(max(a.max(), b.max()))
+    if high - low + 1 > MAX_CATEGORIES:
+        raise InputError(
+            f"ordinal calls of {raters[0]!r} and {raters[1]!r} span more than "
+            f"{MAX_CATEGORIES} levels"
+        )
+    return _table(raters, "ordinal", low, high - low + 1, a, b)

@@ -1,0 +1,533 @@
+"""Disclosure control, adversarially: each attack is refused, nothing leaves, the ledger says so.
+
+Hospitals, the study and every number are invented for these tests. Requests travel as
+real Flower messages through the in-process engine (protobuf round trip) into the real
+site ClientApp, whose mod list holds :func:`site_agent.disclosure.gate.disclosure_mod`.
+"""
+
+from __future__ import annotations
+
+import json
+import uuid
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from flwr.app import Context, Message
+from flwr.clientapp import ClientApp
+from flwr.serverapp import Grid, ServerApp
+
+from coordinator.runs.inprocess import run_inprocess
+from site_agent.client_app import app as site_client_app
+from site_agent.contract.protocol import EvaluationPlan, Operation, StudyProtocol, uniform_edges
+from site_agent.contract.release import SiteRelease
+from site_agent.contract.wire import (
+    EVALUATE_MESSAGE_TYPE,
+    SITE_ACTION,
+    ReplyStatus,
+    SiteReply,
+    SiteRequest,
+    decode_reply,
+    encode_reply,
+    encode_request,
+)
+from site_agent.data.predictions import load_predictions, validate_predictions
+from site_agent.disclosure.approvals import approve
+from site_agent.disclosure.gate import (
+    COORDINATOR_NAME_KEY,
+    RefusalCode,
+    apply_policy,
+    disclosure_mod,
+    read_disclosure,
+)
+from site_agent.disclosure.ledger import Outcome, ReleaseLedger, verify_ledger
+from site_agent.disclosure.policy import PrivacySettings, SitePolicy, SmallCellAction
+from site_agent.evaluation import evaluate_site
+from site_agent.exceptions import DisclosureRefused
+from site_agent.service import DATA_PATH_KEY, LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY
+
+SITE = "fernbrook-county-hospital"
+SECRET = "PAT-SECRET-0042"
+
+
+def _write_table(path: Path, n_cases: int = 120, seed: int = 5) -> Path:
+    """Write an invented scored table: one case per patient, a sex attribute and two cohort flags.
+
+    ``cohort_a`` is "yes" for the first 30 cases, ``cohort_b`` for the first 31: the two
+    subgroups differ by exactly one case. ``ward`` is "icu" for one case only.
+    """
+    rng = np.random.default_rng(seed)
+    label = (rng.random(n_cases) < 0.4).astype(int)
+    score = np.clip(rng.beta(2 + 3 * label, 5 - 3 * label), 0.0, 1.0)
+    sex = rng.choice(["female", "male"], size=n_cases)
+    lines = ["case_id,patient_id,label,score,sex,cohort_a,cohort_b,ward"]
+    for i in range(n_cases):
+        a = "yes" if i < 30 else "no"
+        b = "yes" if i < 31 else "no"
+        ward = "icu" if i == 7 else "general"
+        lines.append(f"c{i},p{i},{label[i]},{score[i]:.6f},{sex[i]},{a},{b},{ward}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _protocol(**plan: object) -> StudyProtocol:
+    return StudyProtocol(
+        study_id="FERN-PNEUMO-2031",
+        title="Invented external validation of a pneumonia classifier",
+        evaluation=EvaluationPlan(**plan),  # type: ignore[arg-type]
+        quorum=1,
+    )
+
+
+class _Site:
+    """One invented hospital on disk: data, policy, approvals and ledger."""
+
+    def __init__(self, root: Path, policy: SitePolicy) -> None:
+        root.mkdir(parents=True, exist_ok=True)
+        self.data = _write_table(root / "predictions.csv")
+        self.policy_path = root / "policy.json"
+        self.policy_path.write_text(policy.model_dump_json())
+        self.policy = SitePolicy.load(self.policy_path)
+        self.ledger = root / "release-ledger.jsonl"
+
+    def approve(self, protocol: StudyProtocol) -> None:
+        approve(protocol, self.policy.approvals_file)
+
+    def node_config(self) -> dict[str, bool | int | float | str]:
+        return {
+            SITE_NAME_KEY: SITE,
+            DATA_PATH_KEY: str(self.data),
+            POLICY_PATH_KEY: str(self.policy_path),
+            LEDGER_PATH_KEY: str(self.ledger),
+        }
+
+    def entries(self) -> list[dict[str, object]]:
+        return [e.model_dump(mode="json") for e in ReleaseLedger(self.ledger).entries()]
+
+
+def _policy(**update: object) -> SitePolicy:
+    base = SitePolicy(allowed_subgroup_attributes=("sex", "cohort_a", "cohort_b", "ward"))
+    return base.model_copy(update=update)
+
+
+def _ask(
+    site: _Site,
+    protocol: StudyProtocol,
+    *,
+    times: int = 1,
+    protocol_hash: str | None = None,
+    run_config: dict[str, bool | int | float | str] | None = None,
+    client: ClientApp = site_client_app,
+) -> list[Message]:
+    """Send ``times`` evaluation requests as real Flower messages; return the raw replies."""
+    server = ServerApp()
+    replies: list[Message] = []
+
+    @server.main()
+    def main(grid: Grid, context: Context) -> None:
+        for _ in range(times):
+            request = SiteRequest(
+                operation=Operation.EVALUATE,
+                protocol_json=protocol.canonical_json(),
+                protocol_hash=protocol_hash or protocol.content_hash(),
+                round_number=1,
+                request_id=uuid.uuid4().hex,
+            )
+            (node,) = grid.get_node_ids()
+            message = Message(encode_request(request, None), node, EVALUATE_MESSAGE_TYPE)
+            replies.extend(grid.send_and_receive([message], timeout=30.0))
+
+    run_inprocess(server, client, [site.node_config()], run_config or {})
+    return replies
+
+
+def _declined_with(reply: Message, code: RefusalCode) -> SiteReply:
+    answered = decode_reply(reply.content)
+    assert answered.status is ReplyStatus.DECLINED
+    assert answered.release is None
+    assert answered.reason is not None and answered.reason.startswith(code.value + ":")
+    return answered
+
+
+def _direct_release(site: _Site, protocol: StudyProtocol) -> SiteRelease:
+    return evaluate_site(
+        load_predictions(site.data),
+        protocol.evaluation,
+        site=SITE,
+        protocol_hash=protocol.content_hash(),
+    )
+
+
+# ----------------------------------------------------------------- releases that pass
+
+
+def test_approved_request_is_released_with_a_note_and_recorded_verbatim(tmp_path: Path) -> None:
+    """An allowed request is released; the ledger holds exactly the reply that left."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10), subgroups=("sex",))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    answered = decode_reply(reply.content)
+    assert answered.status is ReplyStatus.RELEASED
+    note, sequence, digest = read_disclosure(reply)
+    assert note is not None and note.min_cell == 5
+    (entry,) = ReleaseLedger(site.ledger).entries()
+    assert (sequence, digest) == (entry.sequence, entry.entry_hash)
+    assert entry.outcome is Outcome.RELEASED
+    assert entry.released == {
+        "reply": json.loads(answered.model_dump_json()),
+        "disclosure": json.loads(note.model_dump_json()),
+    }
+    assert verify_ledger(site.ledger).ok
+
+
+def test_merged_histogram_matches_numpy_histogram_on_the_merged_edges(tmp_path: Path) -> None:
+    """Merged bins hold the counts numpy.histogram gives on the new edges, all 0 or >= 5."""
+    site = _Site(tmp_path / "fernbrook", _policy(small_cells=SmallCellAction.MERGE))
+    protocol = _protocol(histogram_edges=uniform_edges(50))
+    release = _direct_release(site, protocol)
+
+    controlled, note = apply_policy(release, site.policy)
+
+    histogram = controlled.statistics.histogram
+    assert note.merged and note.merged[0] == "statistics.histogram"
+    scores = np.loadtxt(site.data, delimiter=",", skiprows=1, usecols=3)
+    labels = np.loadtxt(site.data, delimiter=",", skiprows=1, usecols=2)
+    # Reference: numpy.histogram (last bin closed, as in site_agent.statistics.summaries).
+    expected_pos, _ = np.histogram(scores[labels == 1], bins=np.asarray(histogram.edges))
+    expected_neg, _ = np.histogram(scores[labels == 0], bins=np.asarray(histogram.edges))
+    assert list(histogram.positive) == expected_pos.tolist()
+    assert list(histogram.negative) == expected_neg.tolist()
+    # Minimum cell size 5: common practice in health-statistics disclosure control.
+    assert all(v == 0 or v >= 5 for v in (*histogram.positive, *histogram.negative))
+    assert set(histogram.edges) <= set(uniform_edges(50))
+
+
+def test_suppressed_histogram_cells_are_zero_and_listed(tmp_path: Path) -> None:
+    """In suppress mode each small bin becomes 0 and its path is in the note."""
+    site = _Site(tmp_path / "fernbrook", _policy(small_cells=SmallCellAction.SUPPRESS))
+    protocol = _protocol(histogram_edges=uniform_edges(50))
+    release = _direct_release(site, protocol)
+    original = release.statistics.histogram.positive
+
+    controlled, note = apply_policy(release, site.policy)
+
+    kept = controlled.statistics.histogram.positive
+    small = [i for i, v in enumerate(original) if 0 < v < 5]
+    assert small  # the table has small bins to suppress
+    assert all(kept[i] == 0 for i in small)
+    assert all(kept[i] == original[i] for i in range(len(original)) if i not in small)
+    assert {f"statistics.histogram.positive[{i}]" for i in small} <= set(note.suppressed)
+
+
+# ----------------------------------------------------------------- attacks, each refused
+
+
+def test_request_for_per_case_scores_is_refused_as_case_level_output(tmp_path: Path) -> None:
+    """A histogram with more bins than cases (per-case scores) is declined and logged."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(1000))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.CASE_LEVEL_OUTPUT)
+    (entry,) = site.entries()
+    assert entry["outcome"] == "declined" and entry["reason"] == "case_level_output"
+
+
+def test_subgroup_holding_one_patient_is_refused(tmp_path: Path) -> None:
+    """A subgroup level with a single case (ward = icu) is declined and logged."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10), subgroups=("ward",))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.SUBGROUP_BELOW_MIN_CELL)
+    assert site.entries()[-1]["reason"] == "subgroup_below_min_cell"
+
+
+def test_overlapping_subgroups_whose_difference_isolates_one_case_are_refused(
+    tmp_path: Path,
+) -> None:
+    """Cohorts A and A plus one case, each large enough, are declined as a pair."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10), subgroups=("cohort_a", "cohort_b"))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.SUBGROUP_DIFFERENCE_BELOW_MIN_CELL)
+    assert site.entries()[-1]["reason"] == "subgroup_difference_below_min_cell"
+
+
+def test_each_overlapping_subgroup_alone_is_released(tmp_path: Path) -> None:
+    """Either cohort on its own passes: the refusal above is about the pair."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10), subgroups=("cohort_a",))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    assert decode_reply(reply.content).status is ReplyStatus.RELEASED
+
+
+def test_repeated_queries_are_refused_once_the_privacy_budget_is_spent(tmp_path: Path) -> None:
+    """With ε = 0.5 per release and 1.0 per study, the third request is declined."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    replies = _ask(site, protocol, times=4)
+
+    # The first two requests each spend ε = 0.5: released, or declined when a rule fires on
+    # the noisy counts (that decision is itself a DP output and is charged too).
+    statuses = [decode_reply(r.content).status for r in replies]
+    assert statuses[2:] == [ReplyStatus.DECLINED] * 2
+    _declined_with(replies[2], RefusalCode.PRIVACY_BUDGET_EXHAUSTED)
+    entries = site.entries()
+    assert [float(str(e["epsilon_spent"])) for e in entries] == [0.5, 0.5, 0.0, 0.0]
+    # Sequential composition (Dwork & Roth 2014, Thm. 3.16): spent epsilons add up.
+    assert sum(float(str(e["epsilon_spent"])) for e in entries) == pytest.approx(1.0)
+    assert [e["reason"] for e in entries[2:]] == ["privacy_budget_exhausted"] * 2
+
+
+def test_noised_release_withholds_exact_estimates_and_states_its_noise(tmp_path: Path) -> None:
+    """Under DP, exact AUCs are withheld and the note gives ε and b = Δ/ε."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    release = _direct_release(site, protocol)
+
+    noised, note = apply_policy(release, site.policy, epsilon=0.5)
+
+    assert noised.exact.auc.auc is None and noised.exact.auc.reason is not None
+    assert note.epsilon == 0.5
+    # One case moves 3 totals, 1 confusion cell (one threshold), 2 histogram bins, 2
+    # calibration counts (Δ_int = 8) and 2 bounded sums (Δ_float = 2): b = 10 / ε.
+    assert note.noise_scale == pytest.approx(10 / 0.5)
+
+
+def test_unapproved_protocol_is_refused_before_any_computation(tmp_path: Path) -> None:
+    """A protocol the site never approved is declined and logged with its hash."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.data.unlink()  # had the handler run, it would decline for missing data instead
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.PROTOCOL_NOT_APPROVED)
+    (entry,) = site.entries()
+    assert entry["protocol_hash"] == protocol.content_hash()
+    assert entry["reason"] == "protocol_not_approved"
+
+
+def test_protocol_edited_after_approval_is_refused(tmp_path: Path) -> None:
+    """Adding a subgroup after approval changes the hash; the edited protocol is declined."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    approved = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(approved)
+    edited = _protocol(histogram_edges=uniform_edges(10), subgroups=("sex",))
+
+    (reply,) = _ask(site, edited)
+
+    _declined_with(reply, RefusalCode.PROTOCOL_CHANGED)
+    assert site.entries()[-1]["reason"] == "protocol_changed_since_approval"
+
+
+def test_request_whose_hash_does_not_match_its_protocol_is_refused(tmp_path: Path) -> None:
+    """An approved hash attached to a different protocol text is declined as changed."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    approved = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(approved)
+    other = _protocol(histogram_edges=uniform_edges(1000))
+
+    (reply,) = _ask(site, other, protocol_hash=approved.content_hash())
+
+    _declined_with(reply, RefusalCode.PROTOCOL_CHANGED)
+
+
+def test_operation_not_in_policy_is_refused(tmp_path: Path) -> None:
+    """A site that allows only monitoring declines an evaluation."""
+    site = _Site(tmp_path / "fernbrook", _policy(allowed_operations=(Operation.MONITOR,)))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.OPERATION_NOT_ALLOWED)
+
+
+def test_subgroup_attribute_not_in_policy_is_refused(tmp_path: Path) -> None:
+    """A protocol asking for a subgroup attribute the site did not allow is declined."""
+    site = _Site(tmp_path / "fernbrook", _policy(allowed_subgroup_attributes=("sex",)))
+    protocol = _protocol(histogram_edges=uniform_edges(10), subgroups=("ward",))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED)
+
+
+def test_coordinator_not_in_policy_is_refused(tmp_path: Path) -> None:
+    """A run naming a coordinator the policy does not list is declined."""
+    site = _Site(tmp_path / "fernbrook", _policy(allowed_coordinators=("tidewater-consortium",)))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol, run_config={COORDINATOR_NAME_KEY: "unknown-lab"})
+
+    _declined_with(reply, RefusalCode.COORDINATOR_NOT_ALLOWED)
+
+
+def test_site_without_policy_declines_everything(tmp_path: Path) -> None:
+    """A node configured without a policy file fails closed."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+    site.policy_path.unlink()
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.POLICY_UNAVAILABLE)
+
+
+def _leaky_app(raise_it: bool) -> ClientApp:
+    """Return a ClientApp whose handler fails with a message that quotes a patient identifier."""
+    app = ClientApp(mods=[disclosure_mod])
+
+    @app.evaluate(SITE_ACTION)
+    def leaky(msg: Message, context: Context) -> Message:
+        if raise_it:
+            raise RuntimeError(f"patient {SECRET} has score 0.8731")
+        reply = SiteReply(
+            site=SITE,
+            request_id="r",
+            status=ReplyStatus.DECLINED,
+            reason=f"PredictionsError: patient {SECRET} has score 0.8731",
+            error_class="PredictionsError",
+        )
+        return Message(encode_reply(reply), reply_to=msg)
+
+    return app
+
+
+@pytest.mark.parametrize(
+    ("raise_it", "code"),
+    [(True, RefusalCode.SITE_ERROR), (False, RefusalCode.SITE_DATA_INVALID)],
+)
+def test_error_text_carrying_a_data_value_never_leaves_the_site(
+    tmp_path: Path, raise_it: bool, code: RefusalCode
+) -> None:
+    """An exception or decline quoting patient data leaves only as a fixed reason code."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    (reply,) = _ask(site, protocol, client=_leaky_app(raise_it))
+
+    _declined_with(reply, code)
+    assert not reply.has_error()
+    wire_text = json.dumps(
+        {k: dict(v) for k, v in reply.content.config_records.items()}, default=str
+    )
+    assert SECRET not in wire_text and "0.8731" not in wire_text
+    assert SECRET not in site.ledger.read_text()
+    assert site.entries()[-1]["reason"] == code.value
+
+
+def test_apply_policy_refuses_disallowed_subgroups_in_a_release(tmp_path: Path) -> None:
+    """apply_policy itself refuses a release holding a subgroup attribute not allowed."""
+    site = _Site(tmp_path / "fernbrook", _policy(allowed_subgroup_attributes=()))
+    release = _direct_release(
+        site, _protocol(histogram_edges=uniform_edges(10), subgroups=("sex",))
+    )
+
+    with pytest.raises(DisclosureRefused, match="subgroup_attribute_not_allowed"):
+        apply_policy(release, site.policy)
+
+
+def _release_with_one_small_cell() -> SiteRelease:
+    """40 positives (37 score 0.97, 3 score 0.55) and 40 negatives (score 0.05), invented."""
+    scores = [0.97] * 37 + [0.55] * 3 + [0.05] * 40
+    labels = [1] * 40 + [0] * 40
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"c{i}" for i in range(80)],
+            "patient_id": [f"p{i}" for i in range(80)],
+            "label": labels,
+            "score": scores,
+        }
+    )
+    plan = EvaluationPlan(histogram_edges=uniform_edges(10), thresholds=(0.5, 0.9))
+    return evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="unregistered")
+
+
+def test_small_confusion_cell_is_suppressed_with_its_class_partner() -> None:
+    """A false-negative count of 3 goes with tp, which would give it back as n_positive − tp."""
+    release = _release_with_one_small_cell()
+    policy = SitePolicy(min_cell=5)
+
+    controlled, note = apply_policy(release, policy)
+
+    at_09 = controlled.statistics.confusion[1]
+    assert (release.statistics.confusion[1].tp, release.statistics.confusion[1].fn) == (37, 3)
+    assert (at_09.tp, at_09.fn, at_09.fp, at_09.tn) == (0, 0, 0, 40)
+    # Complementary suppression (common practice): the released class total minus the
+    # released cells of that class is 0 or at least the minimum cell size.
+    hidden = controlled.statistics.n_positive - at_09.tp - at_09.fn
+    assert hidden == 0 or hidden >= 5
+    assert {"statistics.confusion[1].tp", "statistics.confusion[1].fn"} <= set(note.suppressed)
+
+
+def test_suppressed_histogram_cell_cannot_be_recovered_from_the_class_total() -> None:
+    """A lone small bin is suppressed with another, so n_positive − Σ kept is not small."""
+    release = _release_with_one_small_cell()
+
+    controlled, note = apply_policy(release, SitePolicy(min_cell=5))
+
+    stats = controlled.statistics
+    for total, row in (
+        (stats.n_positive, stats.histogram.positive),
+        (stats.n_negative, stats.histogram.negative),
+    ):
+        hidden = total - sum(row)
+        # Secondary suppression (common practice): what is hidden is 0 or >= min_cell.
+        assert hidden == 0 or hidden >= 5
+    hidden_count = stats.n_positive + stats.n_negative - sum(stats.calibration.count)
+    assert hidden_count == 0 or hidden_count >= 5
+    assert "statistics.histogram.positive[5]" in note.suppressed
+
+
+def test_a_small_pending_count_is_not_recoverable_from_the_agreement_tables() -> None:
+    """Two pending cases: withheld, and so are the agreement tables that counted them."""
+    rng = np.random.default_rng(11)
+    n = 60
+    labels = rng.integers(0, 2, n).astype(str).astype(object)
+    labels[:2] = ""  # two cases whose reference standard is pending
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"c{i}" for i in range(n)],
+            "patient_id": [f"p{i}" for i in range(n)],
+            "label": labels,
+            "score": rng.random(n).round(4).astype(str),
+            "reader_a": rng.integers(0, 2, n).astype(str),
+        }
+    )
+    plan = EvaluationPlan(histogram_edges=uniform_edges(4), thresholds=(0.5,))
+    release = evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="0" * 64)
+    assert release.statistics.agreement  # the unpoliced release has the reader table
+    assert sum(map(sum, release.statistics.agreement[0].counts)) == n  # it counts pending cases
+
+    policed, note = apply_policy(release, SitePolicy(min_cell=5))
+
+    # Small-cell rule (min cell 5, common practice): the table total minus the released
+    # case count would give the withheld pending count, so the tables leave with it.
+    assert policed.statistics.n_pending == 0
+    assert policed.statistics.agreement == ()
+    assert "statistics.agreement" in note.withheld
