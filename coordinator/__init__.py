@@ -28,7 +28,7 @@ _EXPORTS: dict[str, str] = {
     "meta_analyze": "coordinator.pooling.meta_analysis",
     "population_stability_index": "coordinator.monitoring.drift",
     "render_report": "coordinator.report.study_report",
-    "request_adaptation": "coordinator.adaptation.curves",
+    "request_adaptation": "coordinator.adaptation.requests",
     "run_federated": "coordinator.adaptation.federated",
     "run_monitoring": "coordinator.runs.engines",
     "run_study": "coordinator.runs.engines",
@@ -79,8 +79,8 @@ def __dir__() -> list[str]:
 
 
 if TYPE_CHECKING:
-    from coordinator.adaptation.curves import request_adaptation
     from coordinator.adaptation.federated import run_federated
+    from coordinator.adaptation.requests import request_adaptation
     from coordinator.monitoring.alerts import DriftAlert, WebhookAlerter
     from coordinator.monitoring.analysis import DriftFindings, analyse_windows
     from coordinator.monitoring.control_charts import cusum_chart, ewma_chart

@@ -33,7 +33,7 @@ META_HELP = (
     "Pool per-site results from a CSV or Parquet file: per-site estimates with weights, "
     "fixed and random effects, tau², I², H², Q and a prediction interval for a new site. "
     "Columns: site with estimate and se (or variance); or auc and auc_se; or tp, fp, fn, "
-    f"tn. {RESEARCH_NOTICE}"
+    "tn."
 )
 _MEASURE_NAMES: dict[str, str] = {
     "estimate": "estimate",
@@ -119,7 +119,7 @@ def meta_command(
 
 def add_meta_command(app: typer.Typer, name: str = "meta") -> None:
     """Register ``meta`` on ``app`` with its help text (which carries the notice)."""
-    app.command(name, help=META_HELP, no_args_is_help=True)(meta_command)
+    app.command(name, help=META_HELP, epilog=RESEARCH_NOTICE, no_args_is_help=True)(meta_command)
 
 
 def run_meta(

@@ -18,7 +18,8 @@ import typer
 from rich.console import Console
 
 from coordinator.cli import add_meta_command
-from simulations.monitor_cli import add_monitor_command
+from coordinator.monitoring.cli import add_monitor_command
+from simulations.drift_cli import add_rehearse_drift_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
@@ -36,6 +37,7 @@ app = typer.Typer(
 app.add_typer(site_app)
 add_meta_command(app)
 add_monitor_command(app)
+add_rehearse_drift_command(app)
 
 
 @app.command(
@@ -44,8 +46,9 @@ add_monitor_command(app)
         "Rehearse a multi-site study on synthetic hospitals drawn from a public dataset: "
         "develop a model at one site, evaluate it at every site through the same "
         "coordinator and site-agent code a deployment uses, and write results.json, "
-        f"sites.csv and report.html. {RESEARCH_NOTICE}"
+        "sites.csv and report.html."
     ),
+    epilog=RESEARCH_NOTICE,
 )
 def rehearse_command(
     out: Annotated[Path, typer.Option("--out", help="Directory for results and report.")],

@@ -24,7 +24,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from coordinator.pooling.assemble import SiteInfo, build_results
+from coordinator.pooling.assemble import build_results
+from coordinator.pooling.sites import SiteInfo
 from coordinator.pooling.study_results import StudyResults
 from coordinator.report.exports import write_exports
 from coordinator.report.study_report import render_report

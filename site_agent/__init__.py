@@ -35,7 +35,7 @@ _EXPORTS: dict[str, str] = {
     "StudyProtocol": "site_agent.contract.protocol",
     "SufficientStatistics": "site_agent.statistics.summaries",
     "answer": "site_agent.service",
-    "apply_policy": "site_agent.disclosure.gate",
+    "apply_policy": "site_agent.disclosure.small_cells",
     "approve": "site_agent.disclosure.approvals",
     "bundle_sha256": "site_agent.training.model_bundle",
     "compute_statistics": "site_agent.statistics.summaries",
@@ -124,9 +124,10 @@ if TYPE_CHECKING:
         validate_predictions,
     )
     from site_agent.disclosure.approvals import approve, is_approved
-    from site_agent.disclosure.gate import apply_policy, disclosure_mod
+    from site_agent.disclosure.gate import disclosure_mod
     from site_agent.disclosure.ledger import ReleaseLedger, verify_ledger
     from site_agent.disclosure.policy import SitePolicy
+    from site_agent.disclosure.small_cells import apply_policy
     from site_agent.evaluation import evaluate_site
     from site_agent.exceptions import (
         BundleError,

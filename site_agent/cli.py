@@ -19,17 +19,18 @@ from site_agent.contract.release import (
 )
 from site_agent.data.predictions import load_predictions
 from site_agent.disclosure.approvals import approve, list_approvals
-from site_agent.disclosure.gate import apply_policy
 from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
 from site_agent.statistics.metrics import MetricsSummary, summarize
 
 site_app = typer.Typer(
+    epilog=RESEARCH_NOTICE,
     name="site",
-    help=f"Commands run at a hospital, beside its data. {RESEARCH_NOTICE}",
+    help="Commands run at a hospital, beside its data.",
     no_args_is_help=True,
     add_completion=False,
 )
@@ -37,7 +38,8 @@ site_app = typer.Typer(
 
 @site_app.command(
     "evaluate",
-    help=f"Evaluate a predictions table and show what would leave the site. {RESEARCH_NOTICE}",
+    help="Evaluate a predictions table and show what would leave the site.",
+    epilog=RESEARCH_NOTICE,
 )
 def evaluate_command(
     predictions: Annotated[
@@ -112,9 +114,10 @@ def _number(value: float | None) -> str:
 
 
 def _p_value(p: float | None) -> str:
+    """``p < 0.001`` or ``p = 0.012``: the relation is part of the text."""
     if p is None:
-        return "—"
-    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+        return "p not available"
+    return "p < 0.001" if p < 0.001 else f"p = {p:.3f}"
 
 
 def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> None:
@@ -158,7 +161,7 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
             f"— ({r.reason})"
             if r.difference is None
             else f"{r.difference:+.3f} [{_number(r.lower)}, {_number(r.upper)}], "
-            f"p = {_p_value(r.p_value)}"
+            f"{_p_value(r.p_value)}"
         )
         auc.add_row(f"model − {r.reader} (paired DeLong)", difference)
     console.print(auc)
@@ -207,7 +210,8 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
 
 ledger_app = typer.Typer(
     name="ledger",
-    help=f"Show or check the site's release ledger. {RESEARCH_NOTICE}",
+    epilog=RESEARCH_NOTICE,
+    help="Show or check the site's release ledger.",
     no_args_is_help=True,
     add_completion=False,
 )
@@ -219,7 +223,8 @@ _LEDGER_OPTION = typer.Option("--ledger", help="The site's release ledger (JSON 
 
 @site_app.command(
     "approve",
-    help=f"Approve a study protocol: record its content hash, title and time. {RESEARCH_NOTICE}",
+    help="Approve a study protocol: record its content hash, title and time.",
+    epilog=RESEARCH_NOTICE,
 )
 def approve_command(
     protocol: Annotated[Path, typer.Argument(help="Study protocol JSON to approve.")],
@@ -236,7 +241,9 @@ def approve_command(
     typer.echo(RESEARCH_NOTICE)
 
 
-@site_app.command("approvals", help=f"List the protocols this site approved. {RESEARCH_NOTICE}")
+@site_app.command(
+    "approvals", help="List the protocols this site approved.", epilog=RESEARCH_NOTICE
+)
 def approvals_command(store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_FILE) -> None:
     """List the approvals file."""
     try:
@@ -248,17 +255,20 @@ def approvals_command(store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_
         typer.echo(f"{a.approved_at.isoformat()}  {a.protocol_hash}  {a.study_id}  {a.title}")
     if not approvals:
         typer.echo("no approved protocols")
+    typer.echo(RESEARCH_NOTICE)
 
 
 @site_app.command(
-    "policy-schema", help=f"Print the JSON Schema of the site policy file. {RESEARCH_NOTICE}"
+    "policy-schema",
+    help="Print the JSON Schema of the site policy file.",
+    epilog=RESEARCH_NOTICE,
 )
 def policy_schema_command() -> None:
     """Print the policy's JSON Schema."""
     typer.echo(json.dumps(policy_json_schema(), indent=2))
 
 
-@ledger_app.command("show", help=f"Print every ledger entry. {RESEARCH_NOTICE}")
+@ledger_app.command("show", help="Print every ledger entry.", epilog=RESEARCH_NOTICE)
 def ledger_show_command(
     ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDGER_FILE,
     as_json: Annotated[bool, typer.Option("--json", help="One JSON entry per line.")] = False,
@@ -278,11 +288,14 @@ def ledger_show_command(
             f"{e.operation or '-':<9}  {e.study_id or '-'}  eps={e.epsilon_spent:g}  "
             f"{e.reason or ''}".rstrip()
         )
+    if not as_json:
+        typer.echo(RESEARCH_NOTICE)
 
 
 @ledger_app.command(
     "verify",
-    help=f"Check the ledger's hash chain; exit 1 naming the first bad entry. {RESEARCH_NOTICE}",
+    help="Check the ledger's hash chain; exit 1 naming the first bad entry.",
+    epilog=RESEARCH_NOTICE,
 )
 def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDGER_FILE) -> None:
     """Verify the hash chain and exit 1 if any entry was changed, removed or reordered."""
@@ -291,3 +304,4 @@ def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDG
         typer.echo(f"ledger check FAILED: {result.problem}", err=True)
         raise typer.Exit(code=1)
     typer.echo(f"ledger intact: {result.entries} entries, hash chain unbroken")
+    typer.echo(RESEARCH_NOTICE)

@@ -13,6 +13,7 @@ from flwr.app import Array, ArrayRecord, Context, Message, MetricRecord, RecordD
 from flwr.clientapp import ClientApp
 from flwr.clientapp.typing import Mod
 
+from site_agent.contract.node_config import SITE_NAME_KEY, UNNAMED_SITE
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.contract.wire import (
     LOCAL_UPDATE_RECORD,
@@ -32,13 +33,7 @@ from site_agent.disclosure.update_release import (
     read_train_request,
 )
 from site_agent.exceptions import ProtocolError
-from site_agent.service import (
-    SITE_NAME_KEY,
-    UNNAMED_SITE,
-    SiteSettings,
-    answer_with_update,
-    declined_reply,
-)
+from site_agent.service import SiteSettings, answer_with_update, declined_reply
 
 SITE_MODS: list[Mod] = [disclosure_mod]
 """Mods applied to every message this app handles, outermost first."""

@@ -20,6 +20,12 @@ import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from site_agent.contract.adaptation_release import AdaptationRelease
+from site_agent.contract.node_config import (
+    DATA_PATH_KEY,
+    LEDGER_PATH_KEY,
+    POLICY_PATH_KEY,
+    SITE_NAME_KEY,
+)
 from site_agent.contract.protocol import Operation, StudyProtocol
 from site_agent.contract.release import SiteRelease
 from site_agent.contract.wire import (
@@ -40,15 +46,6 @@ from site_agent.exceptions import (
 )
 
 logger = logging.getLogger(__name__)
-
-SITE_NAME_KEY = "site-name"
-DATA_PATH_KEY = "data-path"
-POLICY_PATH_KEY = "policy-path"
-LEDGER_PATH_KEY = "ledger-path"
-"""Keys of a SuperNode's ``node_config`` that configure the site agent."""
-
-UNNAMED_SITE = "unnamed-site"
-"""Site name used in a reply when the node's configuration names no site."""
 
 _UNEXPECTED = "the site agent failed unexpectedly; details are in the site's own log"
 

@@ -13,7 +13,7 @@ part; a declining site's ``Error`` reply is left out of the aggregate, as Flower
 Each train message carries the protocol's request and the model bundle in the strategy's
 ``train_config``; FedProx adds ``proximal-mu``. After the last round every site measures
 the federated weights on its held-out test set
-(:func:`coordinator.adaptation.curves.request_adaptation`).
+(:func:`coordinator.adaptation.requests.request_adaptation`).
 
 Whether a site takes part is its policy's decision: it needs ``fine_tune`` in
 ``allowed_operations`` and ``updates.allowed`` (a federated reply is a weight update);
@@ -58,7 +58,7 @@ from flwr.serverapp import Grid
 from flwr.serverapp.strategy import FedAvg, FedProx
 from pydantic import BaseModel, ConfigDict, Field
 
-from coordinator.adaptation.curves import AdaptationRound, request_adaptation
+from coordinator.adaptation.requests import AdaptationRound, request_adaptation
 from site_agent.contract.protocol import FederatedStrategy, Operation, StudyProtocol
 from site_agent.contract.wire import SiteRequest
 from site_agent.disclosure.update_release import UPDATE_RECORD, train_config

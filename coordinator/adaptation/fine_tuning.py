@@ -2,11 +2,10 @@
 
 Run by the ServerApp after the evaluation rounds when the protocol lists ``fine_tune``:
 first every site fine-tunes on the plan's grid of local case counts and seeds and releases
-performance before and after (:func:`coordinator.adaptation.curves.request_adaptation`), then the
-sites fine-tune together through Flower's strategies and measure the federated model
-(:func:`coordinator.adaptation.federated.run_federated`). Both use the same held-out test set at
-each
-site, the one the site's split (seeded by the plan) sets aside.
+performance before and after (:func:`coordinator.adaptation.requests.request_adaptation`),
+then the sites fine-tune together through Flower's strategies and measure the federated
+model (:func:`coordinator.adaptation.federated.run_federated`). Both use the same held-out
+test set at each site, the one the site's split (seeded by the plan) sets aside.
 
 :func:`add_fine_tuning` carries the outcome into the study results: the adaptation curves
 (:func:`coordinator.adaptation.curves.adaptation_rows`), the smallest adequate case counts and the
@@ -27,13 +26,12 @@ from pydantic import BaseModel, ConfigDict
 from coordinator.adaptation.curves import (
     AUC_CHANGE,
     POOLED,
-    AdaptationRound,
     adaptation_rows,
     adequate_cases,
     count_label,
-    request_adaptation,
 )
 from coordinator.adaptation.federated import FederatedRun, run_federated
+from coordinator.adaptation.requests import AdaptationRound, request_adaptation
 from coordinator.pooling.study_results import (
     AdaptationRow,
     AdequateCases,

@@ -7,7 +7,8 @@ help. Whatever happens, :meth:`WebhookAlerter.send` returns a :class:`DeliveryRe
 and logs a failed delivery: monitoring goes on if the receiver is down.
 
 Every alert carries the research-tool notice: a drift alert is a prompt for people to
-look at a site, never a clinical finding.
+look at a site, never a clinical finding. :func:`alarm_alerts` turns the alarms of a drift
+analysis into alerts, one per site, metric and method at its onset.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ import httpx
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from coordinator.monitoring.drift import DriftLevel
+from coordinator.monitoring.findings import DriftAlarm, DriftFindings
 from site_agent.exceptions import InputError
 from site_agent.notices import RESEARCH_NOTICE
 
@@ -195,3 +197,31 @@ class WebhookAlerter:
         traceback: TracebackType | None,
     ) -> None:
         self.close()
+
+
+def alarm_alerts(findings: DriftFindings) -> list[DriftAlert]:
+    """Return one webhook alert per site, metric and method: its first alarm.
+
+    A persistent shift keeps alarming window after window; one alert at its onset (its
+    message says how many windows alarmed in all) keeps the receiver from being flooded.
+    """
+    groups: dict[tuple[str, str, str], list[DriftAlarm]] = {}
+    for alarm in findings.alarms:
+        groups.setdefault((alarm.site, alarm.metric, alarm.method), []).append(alarm)
+    alerts = []
+    for group in groups.values():
+        first = min(group, key=lambda a: a.window_number)
+        alerts.append(
+            DriftAlert(
+                study_id=findings.study_id,
+                site=first.site,
+                window_start=first.window_start,
+                window_end=first.window_end,
+                metric=first.metric,
+                method=first.method,
+                statistic=first.statistic,
+                level=DriftLevel.SHIFTED,
+                message=f"{first.message} ({len(group)} alarming window(s) in this run).",
+            )
+        )
+    return alerts

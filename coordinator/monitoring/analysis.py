@@ -7,7 +7,8 @@ windows of the study, merged. Two kinds of evidence are read from each later win
 (pending labels included) against the baseline histogram, by the population stability
 index and the binned Kolmogorov–Smirnov test (:mod:`coordinator.monitoring.drift`); and the mix of
 one acquisition attribute (scanner vendor) by Pearson's chi-square and the total variation
-distance. A window whose level reads ``shifted`` raises an alarm.
+distance. A window whose level reads ``shifted`` raises an alarm
+(:mod:`coordinator.monitoring.label_free`).
 
 *Label-based, as the reference standard matures.* Sensitivity and specificity at one
 threshold (successes out of trials; pending labels are in neither) run through
@@ -15,7 +16,13 @@ standardized binomial CUSUM and EWMA charts (:mod:`coordinator.monitoring.contro
 window's DeLong AUC with its standard error through the normal CUSUM and EWMA charts.
 Targets come from the baseline windows: the pooled proportion, and the inverse-variance
 weighted mean AUC. Charts watch for a fall (``side="lower"``) and start after the
-baseline; a window without labelled cases is skipped, not counted as in control.
+baseline; a window without labelled cases is skipped, not counted as in control
+(:mod:`coordinator.monitoring.accuracy_charts`).
+
+This module reads the store and assembles each site's windows; the result models are in
+:mod:`coordinator.monitoring.findings` and the webhook alerts of the alarms in
+:mod:`coordinator.monitoring.alerts`. :func:`analyse_windows`, :class:`DriftFindings`,
+:class:`DriftSettings` and :func:`alarm_alerts` are importable from here.
 
 Label completeness per window is the share of released cases whose label is known. The
 store keeps each window's latest release (:mod:`coordinator.monitoring.rounds` asks again for
@@ -47,163 +54,51 @@ Siddiqi N (2006). Credit Risk Scorecards. Wiley, chapter 8.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from datetime import date
 
-import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
-
-from coordinator.monitoring.alerts import DriftAlert
-from coordinator.monitoring.control_charts import (
-    DEFAULT_CUSUM_H,
-    DEFAULT_CUSUM_K,
-    DEFAULT_EWMA_LAMBDA,
-    DEFAULT_EWMA_WIDTH,
-    CusumResult,
-    EwmaResult,
-    cusum_chart,
-    cusum_chart_proportion,
-    ewma_chart,
-    ewma_chart_proportion,
+from coordinator.monitoring.accuracy_charts import chart_site, confusion_at, usable_counts
+from coordinator.monitoring.alerts import alarm_alerts
+from coordinator.monitoring.drift import DriftLevel
+from coordinator.monitoring.findings import (
+    AUC,
+    LABEL_METRICS,
+    SCORE_DISTRIBUTION,
+    SENSITIVITY,
+    SPECIFICITY,
+    DriftAlarm,
+    DriftFindings,
+    DriftSettings,
+    SiteDrift,
+    WindowDrift,
+    mix_metric,
+    window_alarm,
 )
-from coordinator.monitoring.drift import (
-    DEFAULT_P_THRESHOLDS,
-    DEFAULT_PSI_THRESHOLDS,
-    DEFAULT_TVD_THRESHOLDS,
-    DriftLevel,
-    binned_ks,
-    category_chi_square,
-    population_stability_index,
-    total_variation_distance,
+from coordinator.monitoring.label_free import (
+    attribute_counts,
+    label_free_row,
+    merged_histogram,
+    mix_counts,
 )
 from coordinator.monitoring.results_store import WindowRecord
-from site_agent.contract.protocol import DEFAULT_BASELINE_WINDOWS
 from site_agent.contract.release import SiteRelease
 from site_agent.exceptions import InputError
-from site_agent.notices import RESEARCH_NOTICE
-from site_agent.statistics.summaries import (
-    ConfusionCounts,
-    ProportionName,
-    ScoreHistogram,
-    common_edges,
-)
 
-SCORE_DISTRIBUTION = "score_distribution"
-SENSITIVITY = "sensitivity"
-SPECIFICITY = "specificity"
-AUC = "auc"
-LABEL_METRICS = (SENSITIVITY, SPECIFICITY, AUC)
-"""Metric names of the label-based charts, in report order."""
-PSI_BAND_SHARE = 0.1
-"""PSI is taken over score bands holding at least this share of the baseline each (about
-ten bands, as scorecards use deciles; Siddiqi 2006, common practice), so that sparse bins
-and their floored shares do not dominate it. KS uses every common bin."""
-
-
-def mix_metric(attribute: str) -> str:
-    """Return the metric name of an attribute's case mix (``scanner_vendor_mix``)."""
-    return f"{attribute}_mix"
-
-
-class _Model(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-
-class DriftSettings(_Model):
-    """How windows are compared and charted; defaults are the cited published designs."""
-
-    baseline_windows: int = Field(default=DEFAULT_BASELINE_WINDOWS, ge=1)
-    mix_attribute: str | None = Field(default="scanner_vendor")
-    threshold: float | None = Field(
-        default=None, description="Threshold of the proportion charts; None: the first."
-    )
-    cusum_k: float = DEFAULT_CUSUM_K
-    cusum_h: float = DEFAULT_CUSUM_H
-    ewma_lambda: float = DEFAULT_EWMA_LAMBDA
-    ewma_width: float = DEFAULT_EWMA_WIDTH
-    psi_thresholds: tuple[float, float] = DEFAULT_PSI_THRESHOLDS
-    p_thresholds: tuple[float, float] = DEFAULT_P_THRESHOLDS
-    tvd_thresholds: tuple[float, float] = DEFAULT_TVD_THRESHOLDS
-
-
-class WindowDrift(_Model):
-    """One site's drift statistics in one window; None where undefined or not released."""
-
-    window_number: int
-    window_start: date
-    window_end: date
-    baseline: bool
-    released: bool
-    n_cases: int | None = None
-    n_labelled: int | None = None
-    n_pending: int | None = None
-    label_completeness: float | None = None
-    revisions: int = Field(default=0, description="Times the stored release was replaced.")
-    psi: float | None = None
-    psi_level: DriftLevel = DriftLevel.UNDETERMINED
-    ks_distance: float | None = None
-    ks_p_value: float | None = None
-    ks_level: DriftLevel = DriftLevel.UNDETERMINED
-    mix_shares: dict[str, float] = Field(default_factory=dict)
-    mix_p_value: float | None = None
-    mix_level: DriftLevel = DriftLevel.UNDETERMINED
-    tvd: float | None = None
-    tvd_level: DriftLevel = DriftLevel.UNDETERMINED
-    sensitivity: float | None = None
-    sensitivity_trials: int | None = None
-    specificity: float | None = None
-    specificity_trials: int | None = None
-    auc: float | None = None
-    auc_se: float | None = None
-    charts: dict[str, float | None] = Field(
-        default_factory=dict, description="Chart statistics by '<metric>_<cusum|ewma>'."
-    )
-    notes: list[str] = Field(default_factory=list)
-
-
-class DriftAlarm(_Model):
-    """A chart or a drift statistic that crossed its limit at one site in one window."""
-
-    site: str
-    metric: str
-    method: str
-    window_number: int
-    window_start: date
-    window_end: date
-    statistic: float | None
-    message: str
-
-
-class SiteDrift(_Model):
-    """Everything the drift analysis found for one site."""
-
-    site: str
-    targets: dict[str, float | None] = Field(description="Baseline value of each metric.")
-    baseline_edges: tuple[float, ...] | None = None
-    baseline_counts: tuple[int, ...] | None = None
-    limits: dict[str, float] = Field(default_factory=dict)
-    notes: list[str] = Field(default_factory=list)
-    windows: list[WindowDrift]
-
-
-class DriftFindings(_Model):
-    """The drift analysis of one study: per-site series, the alarms, and the settings."""
-
-    study_id: str
-    settings: DriftSettings
-    threshold: float | None
-    windows: list[tuple[date, date]]
-    sites: list[SiteDrift]
-    alarms: list[DriftAlarm]
-    notice: str = RESEARCH_NOTICE
-
-    def first_alarms(self) -> dict[tuple[str, str], DriftAlarm]:
-        """Return the first alarm per (site, metric), whatever the method."""
-        first: dict[tuple[str, str], DriftAlarm] = {}
-        for alarm in sorted(self.alarms, key=lambda a: a.window_number):
-            first.setdefault((alarm.site, alarm.metric), alarm)
-        return first
+__all__ = [
+    "AUC",
+    "LABEL_METRICS",
+    "SCORE_DISTRIBUTION",
+    "SENSITIVITY",
+    "SPECIFICITY",
+    "DriftAlarm",
+    "DriftFindings",
+    "DriftSettings",
+    "SiteDrift",
+    "WindowDrift",
+    "alarm_alerts",
+    "analyse_windows",
+    "mix_metric",
+]
 
 
 def analyse_windows(
@@ -249,34 +144,6 @@ def analyse_windows(
     )
 
 
-def alarm_alerts(findings: DriftFindings) -> list[DriftAlert]:
-    """Return one webhook alert per site, metric and method: its first alarm.
-
-    A persistent shift keeps alarming window after window; one alert at its onset (its
-    message says how many windows alarmed in all) keeps the receiver from being flooded.
-    """
-    groups: dict[tuple[str, str, str], list[DriftAlarm]] = {}
-    for alarm in findings.alarms:
-        groups.setdefault((alarm.site, alarm.metric, alarm.method), []).append(alarm)
-    alerts = []
-    for group in groups.values():
-        first = min(group, key=lambda a: a.window_number)
-        alerts.append(
-            DriftAlert(
-                study_id=findings.study_id,
-                site=first.site,
-                window_start=first.window_start,
-                window_end=first.window_end,
-                metric=first.metric,
-                method=first.method,
-                statistic=first.statistic,
-                level=DriftLevel.SHIFTED,
-                message=f"{first.message} ({len(group)} alarming window(s) in this run).",
-            )
-        )
-    return alerts
-
-
 def _threshold(
     by_site: dict[str, dict[tuple[date, date], SiteRelease]], wanted: float | None
 ) -> float | None:
@@ -291,28 +158,6 @@ def _threshold(
     return None
 
 
-def _confusion(release: SiteRelease, threshold: float | None) -> ConfusionCounts | None:
-    for c in release.statistics.confusion:
-        if c.threshold == threshold:
-            return c
-    return None
-
-
-def _usable_counts(c: ConfusionCounts, name: ProportionName) -> tuple[int, int]:
-    """Return (successes, trials), or (0, 0) if a disclosure step may have zeroed a cell.
-
-    A site that suppresses a small confusion cell sets it to 0 and drops all four
-    proportions' patient moments; a genuine count has moments with at least one patient
-    per proportion that has trials. With moments dropped, a proportion is still usable
-    when neither of its cells is 0 (a suppressed cell reads 0).
-    """
-    successes, trials = c.counts(name)
-    moments = getattr(c, name)
-    if trials > 0 and moments.clusters == 0 and (successes == 0 or successes == trials):
-        return 0, 0
-    return successes, trials
-
-
 def _analyse_site(
     site: str,
     releases: dict[tuple[date, date], SiteRelease],
@@ -325,8 +170,8 @@ def _analyse_site(
     ordered = [releases.get(w) for w in windows]
     baseline = [r for r in ordered[:n_base] if r is not None]
     notes: list[str] = []
-    base_hist = _merged_histogram([r.statistics.histogram for r in baseline])
-    base_mix = _mix_counts(baseline, settings.mix_attribute)
+    base_hist = merged_histogram([r.statistics.histogram for r in baseline])
+    base_mix = mix_counts(baseline, settings.mix_attribute)
     if not baseline:
         notes.append("no baseline window was released: drift is undetermined at this site")
     rows: list[dict[str, object]] = []
@@ -346,7 +191,7 @@ def _analyse_site(
         row.update(_counts_row(release, threshold, settings.mix_attribute))
         row["revisions"] = revisions.get((start, end), 0)
         if index >= n_base and base_hist is not None:
-            row.update(_label_free_row(release, base_hist, base_mix, settings))
+            row.update(label_free_row(release, base_hist, base_mix, settings))
             for metric, method, key, level in (
                 (SCORE_DISTRIBUTION, "psi", "psi", "psi_level"),
                 (SCORE_DISTRIBUTION, "ks", "ks_distance", "ks_level"),
@@ -357,14 +202,14 @@ def _analyse_site(
                 if row.get(level) is DriftLevel.SHIFTED:
                     value = row.get(key)
                     alarms.append(
-                        _alarm(
+                        window_alarm(
                             site, metric, method, index, start, end,
                             value if isinstance(value, float) else None,
                             f"{metric.replace('_', ' ')} shifted from the baseline ({method})",
                         )
                     )  # fmt: skip
         rows.append(row)
-    targets, limits, chart_alarms = _charts(site, rows, ordered, settings, threshold, notes)
+    targets, limits, chart_alarms = chart_site(site, rows, ordered, settings, threshold, notes)
     alarms.extend(chart_alarms)
     return (
         SiteDrift(
@@ -378,60 +223,6 @@ def _analyse_site(
         ),
         alarms,
     )
-
-
-def _alarm(
-    site: str,
-    metric: str,
-    method: str,
-    index: int,
-    start: date,
-    end: date,
-    statistic: float | None,
-    message: str,
-) -> DriftAlarm:
-    return DriftAlarm(
-        site=site,
-        metric=metric,
-        method=method,
-        window_number=index + 1,
-        window_start=start,
-        window_end=end,
-        statistic=statistic if statistic is None or math.isfinite(statistic) else None,
-        message=f"{site}, window {start} to {end}: {message}",
-    )
-
-
-def _merged_histogram(histograms: list[ScoreHistogram]) -> ScoreHistogram | None:
-    if not histograms:
-        return None
-    merged = histograms[0]
-    for h in histograms[1:]:
-        merged = merged.merge(h)
-    return merged
-
-
-def _mix_counts(releases: list[SiteRelease], attribute: str | None) -> dict[str, int] | None:
-    total: dict[str, int] | None = None
-    for release in releases:
-        counts = _attribute_counts(release, attribute)
-        if counts is None:
-            continue
-        total = total or {}
-        for level, n in counts.items():
-            total[level] = total.get(level, 0) + n
-    return total
-
-
-def _attribute_counts(release: SiteRelease, attribute: str | None) -> dict[str, int] | None:
-    for counts in release.attribute_counts:
-        if counts.attribute == attribute:
-            return counts.as_dict()
-    return None
-
-
-def _finite(value: float) -> float | None:
-    return float(value) if math.isfinite(value) else None
 
 
 def _counts_row(
@@ -448,174 +239,14 @@ def _counts_row(
         "auc": release.exact.auc.auc,
         "auc_se": release.exact.auc.se,
     }
-    mix = _attribute_counts(release, attribute)
+    mix = attribute_counts(release, attribute)
     if mix:
         total = sum(mix.values())
         row["mix_shares"] = {level: n / total for level, n in mix.items()} if total else {}
-    c = _confusion(release, threshold)
+    c = confusion_at(release, threshold)
     if c is not None:
         for name in (SENSITIVITY, SPECIFICITY):
-            successes, trials = _usable_counts(c, name)  # type: ignore[arg-type]
+            successes, trials = usable_counts(c, name)  # type: ignore[arg-type]
             row[f"{name}_trials"] = trials
             row[name] = successes / trials if trials else None
     return row
-
-
-def _label_free_row(
-    release: SiteRelease,
-    base_hist: ScoreHistogram,
-    base_mix: dict[str, int] | None,
-    settings: DriftSettings,
-) -> dict[str, object]:
-    row: dict[str, object] = {}
-    notes: list[str] = []
-    current = release.statistics.histogram
-    edges = common_edges(base_hist.edges, current.edges)
-    if len(edges) < 3:
-        notes.append("the window and the baseline share fewer than two score bins")
-    else:
-        ref, cur = base_hist.coarsened(edges).all, current.coarsened(edges).all
-        bands = _bands(ref, PSI_BAND_SHARE)
-        psi = population_stability_index(
-            [sum(ref[a:b]) for a, b in bands],
-            [sum(cur[a:b]) for a, b in bands],
-            thresholds=settings.psi_thresholds,
-        )
-        ks = binned_ks(ref, cur, thresholds=settings.p_thresholds)
-        row.update(
-            psi=_finite(psi.psi),
-            psi_level=psi.level,
-            ks_distance=_finite(ks.distance),
-            ks_p_value=_finite(ks.p_value),
-            ks_level=ks.level,
-        )
-        notes.extend(r for r in (psi.reason, ks.reason) if r)
-    mix = _attribute_counts(release, settings.mix_attribute)
-    if base_mix and mix:
-        chi = category_chi_square(base_mix, mix, thresholds=settings.p_thresholds)
-        tvd = total_variation_distance(base_mix, mix, thresholds=settings.tvd_thresholds)
-        row.update(
-            mix_p_value=_finite(chi.p_value),
-            mix_level=chi.level,
-            tvd=_finite(tvd.distance),
-            tvd_level=tvd.level,
-        )
-        if chi.small_expected:
-            notes.append("some expected attribute counts are below 5: chi-square is rough")
-    row["notes"] = notes
-    return row
-
-
-def _bands(reference: tuple[int, ...], share: float) -> list[tuple[int, int]]:
-    """Group adjacent bins, left to right, until each group holds ``share`` of the reference.
-
-    A last group short of ``share`` joins the one before it. At least two groups are kept
-    when the reference has two non-empty bins.
-    """
-    total = sum(reference)
-    groups: list[tuple[int, int]] = []
-    start, running = 0, 0
-    for end, count in enumerate(reference, start=1):
-        running += count
-        if total and running >= share * total:
-            groups.append((start, end))
-            start, running = end, 0
-    if start < len(reference):
-        if groups and running < share * total:
-            groups[-1] = (groups[-1][0], len(reference))
-        else:
-            groups.append((start, len(reference)))
-    if len(groups) < 2:
-        return [(i, i + 1) for i in range(len(reference))]
-    return groups
-
-
-def _charts(
-    site: str,
-    rows: list[dict[str, object]],
-    ordered: list[SiteRelease | None],
-    settings: DriftSettings,
-    threshold: float | None,
-    notes: list[str],
-) -> tuple[dict[str, float | None], dict[str, float], list[DriftAlarm]]:
-    n_base = settings.baseline_windows
-    targets: dict[str, float | None] = {}
-    alarms: list[DriftAlarm] = []
-    monitored = rows[n_base:]
-    charts: dict[str, tuple[CusumResult, EwmaResult]] = {}
-    for name in (SENSITIVITY, SPECIFICITY):
-        successes = np.zeros(len(rows), dtype=np.int64)
-        trials = np.zeros(len(rows), dtype=np.int64)
-        for i, release in enumerate(ordered):
-            c = None if release is None else _confusion(release, threshold)
-            if c is not None:
-                successes[i], trials[i] = _usable_counts(c, name)  # type: ignore[arg-type]
-        base_trials = int(trials[:n_base].sum())
-        p0 = float(successes[:n_base].sum()) / base_trials if base_trials else math.nan
-        targets[name] = _finite(p0)
-        if not 0.0 < p0 < 1.0:
-            notes.append(f"{name}: the baseline gives no target strictly between 0 and 1")
-            continue
-        # Page (1954) and Roberts (1959) on standardized binomial counts; a fall alarms.
-        options = {"target_rate": p0, "side": "lower"}
-        charts[name] = (
-            cusum_chart_proportion(
-                successes[n_base:], trials[n_base:], k=settings.cusum_k, h=settings.cusum_h,
-                **options,  # type: ignore[arg-type]
-            ),
-            ewma_chart_proportion(
-                successes[n_base:], trials[n_base:], lam=settings.ewma_lambda,
-                width=settings.ewma_width, **options,  # type: ignore[arg-type]
-            ),
-        )  # fmt: skip
-    auc = np.array([_num(r.get("auc")) for r in rows])
-    se = np.array([_num(r.get("auc_se")) for r in rows])
-    base = np.isfinite(auc[:n_base]) & np.isfinite(se[:n_base]) & (se[:n_base] > 0)
-    if base.any():
-        weights = 1.0 / se[:n_base][base] ** 2
-        # Inverse-variance weighted (fixed-effect) mean of the baseline AUCs and its variance.
-        target = float(np.sum(weights * auc[:n_base][base]) / np.sum(weights))
-        target_var = float(1.0 / np.sum(weights))
-        targets[AUC] = target
-        se_total = np.sqrt(se[n_base:] ** 2 + target_var)
-        charts[AUC] = (
-            cusum_chart(
-                auc[n_base:], se_total, target=target, k=settings.cusum_k, h=settings.cusum_h,
-                side="lower",
-            ),
-            ewma_chart(
-                auc[n_base:], se_total, target=target, lam=settings.ewma_lambda,
-                width=settings.ewma_width, side="lower",
-            ),
-        )  # fmt: skip
-    else:
-        targets[AUC] = None
-        notes.append("auc: no baseline window has an AUC with a standard error")
-    limits: dict[str, float] = {"cusum_h": settings.cusum_h}
-    for name, (cusum, ewma) in charts.items():
-        limits["ewma_limit"] = ewma.control_limit
-        for offset, row in enumerate(monitored):
-            chart_values = dict(row.get("charts", {}))  # type: ignore[call-overload]
-            chart_values[f"{name}_cusum"] = cusum.lower[offset]
-            chart_values[f"{name}_ewma"] = ewma.statistic[offset]
-            row["charts"] = chart_values
-        for method, result, values in (
-            ("cusum", cusum, cusum.lower),
-            ("ewma", ewma, ewma.statistic),
-        ):
-            for offset in result.alarms:
-                row = monitored[offset]
-                index = n_base + offset
-                start, end = row["window_start"], row["window_end"]
-                assert isinstance(start, date) and isinstance(end, date)
-                alarms.append(
-                    _alarm(
-                        site, name, method, index, start, end, float(values[offset]),
-                        f"{name} fell below its baseline target ({method.upper()} alarm)",
-                    )
-                )  # fmt: skip
-    return targets, limits, alarms
-
-
-def _num(value: object) -> float:
-    return float(value) if isinstance(value, int | float) else math.nan

@@ -4,11 +4,13 @@ Each site contributes an estimate ``y_i`` and its within-site sampling variance 
 on a scale where a normal approximation is reasonable (identity, logit or log). The
 pooled estimate weights sites by ``1 / (v_i + tau²)``; ``tau²`` is the between-site
 variance, estimated by DerSimonian-Laird, REML or Paule-Mandel (``tau² = 0`` for the
-fixed-effect model). Results are frozen pydantic models so they can be written to JSON:
-NaN is written as ``null`` and read back as NaN.
+fixed-effect model; the estimators and I²/H² are in
+:mod:`coordinator.pooling.heterogeneity`). This module adds the Hartung-Knapp-Sidik-Jonkman
+interval and the prediction interval for a new site. Results are frozen pydantic models
+so they can be written to JSON: NaN is written as ``null`` and read back as NaN.
 
-Helpers put diagnostic measures on a scale fit for pooling: :func:`logit_auc`,
-:func:`logit_sensitivity`, :func:`logit_specificity` and :func:`log_diagnostic_odds_ratio`.
+Helpers in :mod:`coordinator.pooling.effect_sizes` put diagnostic measures on a scale
+fit for pooling (:func:`~coordinator.pooling.effect_sizes.logit_auc` and friends).
 :func:`pooled_vs_meta_note` explains why the merged-counts estimate and the
 random-effects estimate may differ.
 
@@ -42,11 +44,6 @@ Higgins JPT, Thompson SG (2002). Quantifying heterogeneity in a meta-analysis.
 Higgins JPT, Thompson SG, Spiegelhalter DJ (2009). A re-evaluation of random-effects
     meta-analysis. Journal of the Royal Statistical Society A 172(1):137-159.
     doi:10.1111/j.1467-985X.2008.00552.x
-Woolf B (1955). On estimating the relation between blood group and disease. Annals of
-    Human Genetics 19(4):251-253. doi:10.1111/j.1469-1809.1955.tb01348.x
-Glas AS, Lijmer JG, Prins MH, Bonsel GJ, Bossuyt PMM (2003). The diagnostic odds ratio:
-    a single indicator of test performance. Journal of Clinical Epidemiology
-    56(11):1129-1135. doi:10.1016/S0895-4356(03)00177-X
 Simpson EH (1951). The interpretation of interaction in contingency tables. Journal of
     the Royal Statistical Society B 13(2):238-241. doi:10.1111/j.2517-6161.1951.tb00088.x
 """
@@ -55,19 +52,24 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import ArrayLike
 from pydantic import BaseModel, BeforeValidator, ConfigDict
-from scipy import optimize, stats
+from scipy import stats
 
+from coordinator.pooling.effect_sizes import FloatArray, Transform, as_vector
+from coordinator.pooling.heterogeneity import (
+    REML_MAX_ITERATIONS,
+    i2_h2,
+    solve_generalized_q,
+    tau2_dersimonian_laird,
+    tau2_reml,
+)
 from site_agent.exceptions import InputError
 
 Method = Literal["dl", "reml", "pm", "fixed"]
-Transform = Literal["identity", "logit", "log"]
-FloatArray = NDArray[np.float64]
 
 METHOD_LABELS: dict[str, str] = {
     "fixed": "fixed effect (inverse variance)",
@@ -75,13 +77,10 @@ METHOD_LABELS: dict[str, str] = {
     "reml": "random effects, REML",
     "pm": "random effects, Paule-Mandel",
 }
-CONTINUITY_CORRECTION = 0.5
 PREDICTION_CONVENTION = (
     "estimate ± t(k−2) · sqrt(tau² + SE²), SE without HKSJ adjustment "
     "(Higgins, Thompson & Spiegelhalter 2009)"
 )
-_REML_TOLERANCE = 1e-12
-_REML_MAX_ITERATIONS = 500
 _NAN = float("nan")
 
 
@@ -153,29 +152,6 @@ class MetaAnalysis(_Record):
     back_transformed: BackTransformed | None
     sites: tuple[SiteWeight, ...]
     notes: tuple[str, ...]
-
-
-@dataclass(frozen=True, slots=True)
-class EffectSizes:
-    """Per-site estimates and variances on an analysis scale, ready for :func:`meta_analyze`.
-
-    Parameters
-    ----------
-    estimates, variances
-        One value per site, on the scale named by ``transform``.
-    transform
-        The scale of ``estimates``: pass it on as ``meta_analyze(..., transform=...)``.
-    corrected
-        Indices (0-based) of sites whose counts received the 0.5 continuity correction.
-    notes
-        How the values were derived, in words fit for a report.
-    """
-
-    estimates: tuple[float, ...]
-    variances: tuple[float, ...]
-    transform: Transform
-    corrected: tuple[int, ...] = ()
-    notes: tuple[str, ...] = ()
 
 
 def meta_analyze(
@@ -252,14 +228,14 @@ def meta_analyze(
     if method == "fixed":
         tau2 = 0.0
     elif method == "dl":
-        tau2 = _tau2_dersimonian_laird(y, v)
+        tau2 = tau2_dersimonian_laird(y, v)
     elif method == "pm":
-        tau2 = _solve_generalized_q(y, v, float(df))
+        tau2 = solve_generalized_q(y, v, float(df))
     elif method == "reml":
-        tau2 = _tau2_reml(y, v)
+        tau2 = tau2_reml(y, v)
         if math.isnan(tau2):
             notes.append(
-                f"REML did not converge in {_REML_MAX_ITERATIONS} Fisher-scoring steps; "
+                f"REML did not converge in {REML_MAX_ITERATIONS} Fisher-scoring steps; "
                 "every random-effects value is undefined"
             )
     else:
@@ -288,7 +264,7 @@ def meta_analyze(
         crit = float(stats.norm.ppf(1.0 - alpha / 2.0))
         interval = "normal"
 
-    i2, h2 = _i2_h2(v, tau2, q, df, fixed=method == "fixed")
+    i2, h2 = i2_h2(v, tau2, q, df, fixed=method == "fixed")
     tau2_lower, tau2_upper = _NAN, _NAN
     i2_note = "I² and H² from Q" if method == "fixed" else "I² and H² from tau²"
     notes.append(f"{i2_note} (Higgins & Thompson 2002)")
@@ -296,8 +272,8 @@ def meta_analyze(
         notes.append("tau² is 0 by assumption of the fixed-effect model")
     else:
         # Q-profile interval: generalized Q(tau²) equals the chi² quantiles (Viechtbauer 2007).
-        tau2_lower = _solve_generalized_q(y, v, float(stats.chi2.ppf(1.0 - alpha / 2.0, df)))
-        tau2_upper = _solve_generalized_q(y, v, float(stats.chi2.ppf(alpha / 2.0, df)))
+        tau2_lower = solve_generalized_q(y, v, float(stats.chi2.ppf(1.0 - alpha / 2.0, df)))
+        tau2_upper = solve_generalized_q(y, v, float(stats.chi2.ppf(alpha / 2.0, df)))
 
     prediction_lower, prediction_upper = _NAN, _NAN
     if method == "fixed":
@@ -376,82 +352,6 @@ def inverse_transform(value: float, transform: Transform) -> float:
     return value
 
 
-def logit_auc(auc: ArrayLike, se: ArrayLike) -> EffectSizes:
-    """Put AUCs on the logit scale with delta-method variances.
-
-    ``y = log(auc / (1 - auc))`` and ``Var(y) = se² / (auc (1 - auc))²``, the first-order
-    delta method (common practice).
-
-    Raises
-    ------
-    InputError
-        An AUC outside (0, 1), a standard error that is not positive, non-finite values,
-        or lengths that differ.
-    """
-    a = _as_vector(auc, "auc")
-    s = _as_vector(se, "auc_se")
-    if a.size != s.size:
-        raise InputError(f"auc has {a.size} values but auc_se has {s.size}")
-    if np.any((a <= 0.0) | (a >= 1.0)):
-        raise InputError("every AUC must lie strictly between 0 and 1 to be put on the logit scale")
-    if np.any(s <= 0.0):
-        raise InputError("every AUC standard error must be positive")
-    y = np.log(a / (1.0 - a))
-    var = s**2 / (a * (1.0 - a)) ** 2  # delta method: d logit(p)/dp = 1 / (p (1 - p))
-    return EffectSizes(
-        estimates=tuple(float(x) for x in y),
-        variances=tuple(float(x) for x in var),
-        transform="logit",
-        notes=("AUC analysed on the logit scale; variance by the delta method",),
-    )
-
-
-def logit_sensitivity(tp: ArrayLike, fn: ArrayLike) -> EffectSizes:
-    """Logit sensitivity ``tp / (tp + fn)`` per site; see :func:`_logit_proportion`."""
-    return _logit_proportion(tp, fn, "sensitivity", ("tp", "fn"))
-
-
-def logit_specificity(tn: ArrayLike, fp: ArrayLike) -> EffectSizes:
-    """Logit specificity ``tn / (tn + fp)`` per site; see :func:`_logit_proportion`."""
-    return _logit_proportion(tn, fp, "specificity", ("tn", "fp"))
-
-
-def log_diagnostic_odds_ratio(
-    tp: ArrayLike, fp: ArrayLike, fn: ArrayLike, tn: ArrayLike
-) -> EffectSizes:
-    """Log diagnostic odds ratio ``log(tp·tn / (fp·fn))`` per site, with Woolf's variance.
-
-    ``Var = 1/tp + 1/fp + 1/fn + 1/tn`` (Woolf 1955; Glas et al. 2003). A site with a
-    zero cell gets 0.5 added to all four of its cells; other sites are left as they are.
-
-    Raises
-    ------
-    InputError
-        Counts that are negative, not whole numbers, or lengths that differ.
-
-    References
-    ----------
-    Glas AS et al. (2003). J Clin Epidemiol 56(11):1129-1135.
-    doi:10.1016/S0895-4356(03)00177-X
-    """
-    cells = [_counts(x, name) for x, name in ((tp, "tp"), (fp, "fp"), (fn, "fn"), (tn, "tn"))]
-    _same_length(cells, ("tp", "fp", "fn", "tn"))
-    table = np.vstack(cells)
-    zero = np.any(table == 0, axis=0)
-    table = table + CONTINUITY_CORRECTION * zero  # only sites with a zero cell
-    a, b, c, d = table
-    y = np.log(a * d / (b * c))
-    var = 1.0 / a + 1.0 / b + 1.0 / c + 1.0 / d  # Woolf (1955)
-    corrected = tuple(int(i) for i in np.flatnonzero(zero))
-    return EffectSizes(
-        estimates=tuple(float(x) for x in y),
-        variances=tuple(float(x) for x in var),
-        transform="log",
-        corrected=corrected,
-        notes=_correction_notes("diagnostic odds ratio analysed on the log scale", corrected),
-    )
-
-
 def pooled_vs_meta_note() -> str:
     """Explain why merged-counts and random-effects estimates can differ, for reports.
 
@@ -475,76 +375,14 @@ def pooled_vs_meta_note() -> str:
     )
 
 
-def _logit_proportion(
-    events: ArrayLike, others: ArrayLike, what: str, names: tuple[str, str]
-) -> EffectSizes:
-    """Logit of ``events / (events + others)`` with variance ``1/events + 1/others``.
-
-    A site with a zero cell gets 0.5 added to both of its cells (common practice);
-    other sites are left as they are. A site with no cases at all is invalid input.
-    """
-    x = _counts(events, names[0])
-    r = _counts(others, names[1])
-    _same_length([x, r], names)
-    if np.any(x + r == 0):
-        raise InputError(f"{what} is undefined at a site where {names[0]} + {names[1]} is 0")
-    zero = (x == 0) | (r == 0)
-    x = x + CONTINUITY_CORRECTION * zero
-    r = r + CONTINUITY_CORRECTION * zero
-    y = np.log(x / r)
-    var = 1.0 / x + 1.0 / r  # delta method for logit of a binomial proportion
-    corrected = tuple(int(i) for i in np.flatnonzero(zero))
-    return EffectSizes(
-        estimates=tuple(float(v) for v in y),
-        variances=tuple(float(v) for v in var),
-        transform="logit",
-        corrected=corrected,
-        notes=_correction_notes(f"{what} analysed on the logit scale", corrected),
-    )
-
-
-def _correction_notes(first: str, corrected: tuple[int, ...]) -> tuple[str, ...]:
-    if not corrected:
-        return (first,)
-    return (
-        first,
-        f"0.5 added to every cell of {len(corrected)} site(s) with a zero cell "
-        "(continuity correction; other sites unchanged)",
-    )
-
-
-def _as_vector(values: ArrayLike, name: str) -> FloatArray:
-    try:
-        arr = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise InputError(f"{name} must be numbers") from exc
-    if arr.ndim != 1:
-        raise InputError(f"{name} must be a one-dimensional sequence")
-    if not np.all(np.isfinite(arr)):
-        raise InputError(f"{name} contains a value that is not a finite number")
-    return arr
-
-
-def _counts(values: ArrayLike, name: str) -> FloatArray:
-    arr = _as_vector(values, name)
-    if np.any(arr < 0) or np.any(arr != np.round(arr)):
-        raise InputError(f"{name} counts must be non-negative whole numbers")
-    return arr
-
-
-def _same_length(arrays: Sequence[FloatArray], names: Sequence[str]) -> None:
-    if len({a.size for a in arrays}) > 1:
-        raise InputError(f"{', '.join(names)} must have the same number of values")
-
-
 def _validated(
     estimates: ArrayLike,
     variances: ArrayLike,
     labels: Sequence[str] | None,
     confidence: float,
 ) -> tuple[FloatArray, FloatArray, tuple[str, ...]]:
-    y = _as_vector(estimates, "estimates")
-    v = _as_vector(variances, "variances")
+    y = as_vector(estimates, "estimates")
+    v = as_vector(variances, "variances")
     if y.size != v.size:
         raise InputError(f"{y.size} estimates but {v.size} variances")
     if y.size < 2:
@@ -560,72 +398,3 @@ def _validated(
         if len(names) != y.size:
             raise InputError(f"{len(names)} labels for {y.size} sites")
     return y, v, names
-
-
-def _tau2_dersimonian_laird(y: FloatArray, v: FloatArray) -> float:
-    """DerSimonian & Laird (1986): tau² = max(0, (Q - (k-1)) / (S1 - S2 / S1))."""
-    w = 1.0 / v
-    mu = np.sum(w * y) / np.sum(w)
-    q = float(np.sum(w * (y - mu) ** 2))
-    c = float(np.sum(w) - np.sum(w**2) / np.sum(w))
-    return max(0.0, (q - (y.size - 1)) / c)
-
-
-def _generalized_q(y: FloatArray, v: FloatArray, tau2: float) -> float:
-    """Generalized Q: sum w_i (y_i - mu)² with w_i = 1 / (v_i + tau²); decreasing in tau²."""
-    w = 1.0 / (v + tau2)
-    mu = np.sum(w * y) / np.sum(w)
-    return float(np.sum(w * (y - mu) ** 2))
-
-
-def _solve_generalized_q(y: FloatArray, v: FloatArray, target: float) -> float:
-    """Return tau² >= 0 with generalized Q(tau²) = target, or 0 if Q(0) <= target.
-
-    With target ``k - 1`` this is the Paule & Mandel (1982) estimator (DerSimonian &
-    Kacker 2007); with chi² quantiles it gives the Q-profile bounds (Viechtbauer 2007).
-    """
-    if _generalized_q(y, v, 0.0) <= target:
-        return 0.0
-    high = max(float(np.var(y)), float(np.max(v)), 1e-8)
-    while _generalized_q(y, v, high) > target:  # Q -> 0 as tau² -> infinity
-        high *= 2.0
-    root = optimize.brentq(
-        lambda t: _generalized_q(y, v, t) - target, 0.0, high, xtol=1e-14, rtol=1e-14
-    )
-    return float(root)
-
-
-def _tau2_reml(y: FloatArray, v: FloatArray) -> float:
-    """REML tau² by Fisher scoring (Viechtbauer 2005), truncated at 0; NaN if no convergence.
-
-    Score: ½ [sum w² (y - mu)² - sum w + sum w² / sum w];
-    expected information: ½ tr(P²) = ½ [sum w² - 2 sum w³ / sum w + (sum w² / sum w)²],
-    with w = 1 / (v + tau²) and P = W - W 1 1' W / sum w.
-    """
-    tau2 = _tau2_dersimonian_laird(y, v)
-    for _ in range(_REML_MAX_ITERATIONS):
-        w = 1.0 / (v + tau2)
-        s1, s2, s3 = float(np.sum(w)), float(np.sum(w**2)), float(np.sum(w**3))
-        mu = float(np.sum(w * y)) / s1
-        score = float(np.sum(w**2 * (y - mu) ** 2)) - s1 + s2 / s1
-        information = s2 - 2.0 * s3 / s1 + (s2 / s1) ** 2
-        updated = max(0.0, tau2 + score / information)
-        if abs(updated - tau2) <= _REML_TOLERANCE * max(1.0, tau2):
-            return updated
-        tau2 = updated
-    return _NAN
-
-
-def _i2_h2(v: FloatArray, tau2: float, q: float, df: int, *, fixed: bool) -> tuple[float, float]:
-    """I² and H² (Higgins & Thompson 2002).
-
-    Fixed effect: I² = max(0, (Q - df) / Q), H² = Q / df. Otherwise
-    I² = tau² / (tau² + s²), H² = (tau² + s²) / s², with the typical within-site
-    variance s² = (k - 1) sum w / ((sum w)² - sum w²), w = 1 / v.
-    """
-    if fixed:
-        i2 = max(0.0, (q - df) / q) if q > 0 else 0.0
-        return i2, q / df
-    w = 1.0 / v
-    s2 = df * float(np.sum(w)) / (float(np.sum(w)) ** 2 - float(np.sum(w**2)))
-    return tau2 / (tau2 + s2), (tau2 + s2) / s2

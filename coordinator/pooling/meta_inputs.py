@@ -25,7 +25,7 @@ from typing import Literal
 
 import pandas as pd
 
-from coordinator.pooling.meta_analysis import (
+from coordinator.pooling.effect_sizes import (
     EffectSizes,
     Transform,
     log_diagnostic_odds_ratio,

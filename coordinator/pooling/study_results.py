@@ -134,7 +134,7 @@ class AdaptationRow(_Record):
     """One point of an adaptation curve: a metric after fine-tuning on n local cases.
 
     Combined over the repeats (seeds) by Rubin's rules on the logit scale; see
-    :func:`coordinator.adaptation.curves.combine_over_seeds`.
+    :func:`coordinator.adaptation.combination.combine_over_seeds`.
     """
 
     site: str = Field(description="Site name, or 'pooled' (mean over sites).")

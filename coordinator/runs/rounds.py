@@ -36,7 +36,8 @@ from site_agent.contract.wire import (
     decode_reply,
     encode_request,
 )
-from site_agent.disclosure.gate import DisclosureNote, read_disclosure
+from site_agent.disclosure.gate import read_disclosure
+from site_agent.disclosure.small_cells import DisclosureNote
 from site_agent.exceptions import DeploymentError, ProtocolError
 
 MAX_FAULT_REASON_CHARS = 200

@@ -4,7 +4,7 @@ For each seed the packaged drift scenario (:func:`simulations.drift_rehearsal.dr
 is rebuilt with that seed, the model is developed again, and every site's monthly windows
 are released through the same site functions a site agent runs (the window filter of
 :func:`site_agent.service.window_predictions`, :func:`site_agent.evaluation.evaluate_site`,
-the site's :func:`site_agent.disclosure.gate.apply_policy`) and analysed by
+the site's :func:`site_agent.disclosure.small_cells.apply_policy`) and analysed by
 :func:`coordinator.monitoring.analysis.analyse_windows`. Flower is left out: per seed it would
 only add the transport of 96 messages, and 30 seeds through it take too long on two cores.
 
@@ -49,7 +49,7 @@ from simulations.scenario import Scenario
 from simulations.sites import development_split
 from site_agent.contract.protocol import ModelReference
 from site_agent.data.predictions import validate_predictions
-from site_agent.disclosure.gate import apply_policy
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused, EmptyWindowError
 from site_agent.notices import RESEARCH_NOTICE

@@ -25,9 +25,10 @@ from simulations.rehearsal import PreparedStudy, prepare_study
 from simulations.scenario import default_scenario
 from site_agent.contract.protocol import Operation
 from site_agent.contract.wire import ReplyStatus, SiteRequest
-from site_agent.disclosure.gate import apply_policy, check_request
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy
+from site_agent.disclosure.request_check import check_request
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.exceptions import DisclosureRefused
 from site_agent.service import answer
 

@@ -6,7 +6,8 @@ weights (an ``ArrayRecord``) and a ``ConfigRecord`` into which the coordinator p
 :func:`update_disclosure` is called by :func:`site_agent.disclosure.gate.disclosure_mod` for
 every such message, so updates pass the same gate as every other reply:
 
-1. the request is checked as any other (:func:`site_agent.disclosure.gate.check_request`):
+1. the request is checked as any other
+   (:func:`site_agent.disclosure.request_check.check_request`):
    coordinator, approved protocol, and the site's policy must allow ``fine_tune``;
 2. a federated reply *is* a weight update, so the policy must also allow updates
    (``updates.allowed``, off by default). Taking part needs both settings;
@@ -68,19 +69,20 @@ from flwr.clientapp.mod import LocalDpMod
 from flwr.supercore.differential_privacy import add_gaussian_noise_inplace, clip_inputs_inplace
 from pydantic import JsonValue
 
+from site_agent.contract.node_config import (
+    LEDGER_PATH_KEY,
+    POLICY_PATH_KEY,
+    SITE_NAME_KEY,
+    UNNAMED_SITE,
+)
 from site_agent.contract.protocol import Operation, StudyProtocol, UpdateNoise
 from site_agent.contract.wire import LOCAL_UPDATE_RECORD, SiteRequest
-from site_agent.disclosure.gate import (
-    COORDINATOR_NAME_KEY,
-    RefusalCode,
-    check_request,
-    refusal_reason,
-)
 from site_agent.disclosure.ledger import LedgerSession, Outcome, ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy
 from site_agent.disclosure.privacy_budget import BudgetCheck
+from site_agent.disclosure.refusals import RefusalCode, refusal_code, refusal_reason
+from site_agent.disclosure.request_check import COORDINATOR_NAME_KEY, check_request
 from site_agent.exceptions import DisclosureRefused, ProtocolError
-from site_agent.service import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY, UNNAMED_SITE
 
 logger = logging.getLogger(__name__)
 
@@ -271,7 +273,7 @@ def update_disclosure(
         )
         return reply
     except Exception as exc:  # every failure is declined with a fixed reason code only
-        code = _code(exc)
+        code = refusal_code(exc)
         logger.error("site %s declined a weight update: %s", site, code.value, exc_info=exc)
         if ledger is not None:
             try:
@@ -332,12 +334,3 @@ def _checked_update(
         NUM_EXAMPLES: n,
         **_summary(arrays, update_norm(arrays, received), noise),
     }
-
-
-def _code(exc: BaseException) -> RefusalCode:
-    if isinstance(exc, DisclosureRefused):
-        try:
-            return RefusalCode(exc.reason)
-        except ValueError:
-            return RefusalCode.SITE_ERROR
-    return RefusalCode.SITE_ERROR

@@ -15,8 +15,8 @@ from site_agent.contract.protocol import EvaluationPlan, StudyProtocol, uniform_
 from site_agent.contract.release import SiteRelease
 from site_agent.data.predictions import load_predictions
 from site_agent.disclosure.approvals import approve
-from site_agent.disclosure.gate import apply_policy
 from site_agent.disclosure.policy import SitePolicy
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.service import SiteSettings
 
@@ -42,7 +42,7 @@ def _expected_release(site: SiteSettings, protocol: StudyProtocol) -> SiteReleas
     """Compute the reference: the site's release computed directly, without Flower.
 
     ``evaluate_site`` on the site's file, then the site's disclosure policy as
-    ``site_agent.disclosure.gate.apply_policy`` applies it (no noise, so deterministic).
+    ``site_agent.disclosure.small_cells.apply_policy`` applies it (no noise, so deterministic).
     """
     release = evaluate_site(
         load_predictions(site.data_path),

@@ -1,4 +1,4 @@
-"""The monitoring rehearsal and ``sitepool monitor``, end to end on the in-process engine.
+"""The monitoring rehearsal and ``sitepool monitor`` on its store, end to end (in-process engine).
 
 Invented hospitals drawn from the public Wisconsin breast cancer data (scikit-learn), for
 tests only. One rehearsal (seeded, two monitoring passes) is shared by the tests of this
@@ -163,11 +163,3 @@ def test_monitor_command_writes_the_report_and_posts_alarms(
     posted = {(a["site"], a["metric"], a["method"]) for a in alerts}
     assert posted == {(a.site, a.metric, a.method) for a in findings.alarms}
     assert all(a["notice"] == RESEARCH_NOTICE for a in alerts)
-
-
-def test_monitor_command_needs_a_store_or_a_rehearsal(tmp_path: Path) -> None:
-    """Without --store or --rehearse the command fails with a one-line reason."""
-    result = CliRunner().invoke(app, ["monitor", "--out", str(tmp_path)])
-
-    assert result.exit_code == 2
-    assert "either --rehearse or --store" in result.output

@@ -20,8 +20,8 @@ from flwr.serverapp import Grid, ServerApp
 from scipy import stats
 from sklearn.datasets import load_breast_cancer
 
-from coordinator.adaptation.curves import AdaptationRound, request_adaptation
 from coordinator.adaptation.federated import FederatedRun, run_federated
+from coordinator.adaptation.requests import AdaptationRound, request_adaptation
 from coordinator.runs.inprocess import run_inprocess
 from simulations.development import develop_model
 from site_agent import client_app

@@ -17,13 +17,15 @@ from sklearn.metrics import recall_score, roc_auc_score
 from sklearn.preprocessing import StandardScaler
 from statsmodels.stats.meta_analysis import combine_effects
 
-from coordinator.pooling.assemble import POOLED, SiteInfo, build_results, merge_statistics
+from coordinator.pooling.assemble import build_results
+from coordinator.pooling.cohort import merge_statistics
+from coordinator.pooling.sites import POOLED, SiteInfo
 from coordinator.runs.rounds import RoundOutcome, SiteDecline
 from site_agent.contract.protocol import EvaluationPlan, StudyProtocol, uniform_edges
 from site_agent.contract.release import SiteRelease
 from site_agent.data.predictions import validate_predictions
-from site_agent.disclosure.gate import apply_policy
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 
 SITES = ("Larkspur General", "Quarry Hill Clinic", "Saltmarsh Infirmary")
@@ -204,7 +206,8 @@ def test_site_attribute_subgroup_pools_only_the_external_sites(
     releases: dict[str, SiteRelease],
 ) -> None:
     """The role=external row pools exactly the external sites' logit AUCs (REML, HKSJ)."""
-    from coordinator.pooling.meta_analysis import logit_auc, meta_analyze
+    from coordinator.pooling.effect_sizes import logit_auc
+    from coordinator.pooling.meta_analysis import meta_analyze
 
     info = {SITES[0]: SiteInfo(role="development"), SITES[1]: SiteInfo(), SITES[2]: SiteInfo()}
     results = build_results(PROTOCOL, _outcome(releases, []), engine="test", sites=info)

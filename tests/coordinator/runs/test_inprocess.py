@@ -1,8 +1,9 @@
 """The in-process engine against the direct computation without Flower (and Flower's own rules).
 
 Reference for every release: ``site_agent.evaluation.evaluate_site`` called directly on
-each site's file, then the site's policy (``site_agent.disclosure.gate.apply_policy``), with no
-Flower message in between. Flower behaviour is checked against flwr 1.42's own runtime
+each site's file, then the site's policy
+(``site_agent.disclosure.small_cells.apply_policy``), with no Flower message in between.
+Flower behaviour is checked against flwr 1.42's own runtime
 (``flwr/supernode/runtime/run_clientapp.py``: a raising ClientApp yields error code 2).
 """
 

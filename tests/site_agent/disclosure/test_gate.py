@@ -12,7 +12,6 @@ import uuid
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pytest
 from flwr.app import Context, Message
 from flwr.clientapp import ClientApp
@@ -20,6 +19,12 @@ from flwr.serverapp import Grid, ServerApp
 
 from coordinator.runs.inprocess import run_inprocess
 from site_agent.client_app import app as site_client_app
+from site_agent.contract.node_config import (
+    DATA_PATH_KEY,
+    LEDGER_PATH_KEY,
+    POLICY_PATH_KEY,
+    SITE_NAME_KEY,
+)
 from site_agent.contract.protocol import EvaluationPlan, Operation, StudyProtocol, uniform_edges
 from site_agent.contract.release import SiteRelease
 from site_agent.contract.wire import (
@@ -32,20 +37,16 @@ from site_agent.contract.wire import (
     encode_reply,
     encode_request,
 )
-from site_agent.data.predictions import load_predictions, validate_predictions
+from site_agent.data.predictions import load_predictions
 from site_agent.disclosure.approvals import approve
-from site_agent.disclosure.gate import (
-    COORDINATOR_NAME_KEY,
-    RefusalCode,
-    apply_policy,
-    disclosure_mod,
-    read_disclosure,
-)
+from site_agent.disclosure.gate import disclosure_mod, read_disclosure
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import PrivacySettings, SitePolicy, SmallCellAction
+from site_agent.disclosure.refusals import RefusalCode
+from site_agent.disclosure.request_check import COORDINATOR_NAME_KEY
+from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused
-from site_agent.service import DATA_PATH_KEY, LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY
 
 SITE = "fernbrook-county-hospital"
 SECRET = "PAT-SECRET-0042"
@@ -450,84 +451,3 @@ def test_apply_policy_refuses_disallowed_subgroups_in_a_release(tmp_path: Path) 
 
     with pytest.raises(DisclosureRefused, match="subgroup_attribute_not_allowed"):
         apply_policy(release, site.policy)
-
-
-def _release_with_one_small_cell() -> SiteRelease:
-    """40 positives (37 score 0.97, 3 score 0.55) and 40 negatives (score 0.05), invented."""
-    scores = [0.97] * 37 + [0.55] * 3 + [0.05] * 40
-    labels = [1] * 40 + [0] * 40
-    frame = pd.DataFrame(
-        {
-            "case_id": [f"c{i}" for i in range(80)],
-            "patient_id": [f"p{i}" for i in range(80)],
-            "label": labels,
-            "score": scores,
-        }
-    )
-    plan = EvaluationPlan(histogram_edges=uniform_edges(10), thresholds=(0.5, 0.9))
-    return evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="unregistered")
-
-
-def test_small_confusion_cell_is_suppressed_with_its_class_partner() -> None:
-    """A false-negative count of 3 goes with tp, which would give it back as n_positive − tp."""
-    release = _release_with_one_small_cell()
-    policy = SitePolicy(min_cell=5)
-
-    controlled, note = apply_policy(release, policy)
-
-    at_09 = controlled.statistics.confusion[1]
-    assert (release.statistics.confusion[1].tp, release.statistics.confusion[1].fn) == (37, 3)
-    assert (at_09.tp, at_09.fn, at_09.fp, at_09.tn) == (0, 0, 0, 40)
-    # Complementary suppression (common practice): the released class total minus the
-    # released cells of that class is 0 or at least the minimum cell size.
-    hidden = controlled.statistics.n_positive - at_09.tp - at_09.fn
-    assert hidden == 0 or hidden >= 5
-    assert {"statistics.confusion[1].tp", "statistics.confusion[1].fn"} <= set(note.suppressed)
-
-
-def test_suppressed_histogram_cell_cannot_be_recovered_from_the_class_total() -> None:
-    """A lone small bin is suppressed with another, so n_positive − Σ kept is not small."""
-    release = _release_with_one_small_cell()
-
-    controlled, note = apply_policy(release, SitePolicy(min_cell=5))
-
-    stats = controlled.statistics
-    for total, row in (
-        (stats.n_positive, stats.histogram.positive),
-        (stats.n_negative, stats.histogram.negative),
-    ):
-        hidden = total - sum(row)
-        # Secondary suppression (common practice): what is hidden is 0 or >= min_cell.
-        assert hidden == 0 or hidden >= 5
-    hidden_count = stats.n_positive + stats.n_negative - sum(stats.calibration.count)
-    assert hidden_count == 0 or hidden_count >= 5
-    assert "statistics.histogram.positive[5]" in note.suppressed
-
-
-def test_a_small_pending_count_is_not_recoverable_from_the_agreement_tables() -> None:
-    """Two pending cases: withheld, and so are the agreement tables that counted them."""
-    rng = np.random.default_rng(11)
-    n = 60
-    labels = rng.integers(0, 2, n).astype(str).astype(object)
-    labels[:2] = ""  # two cases whose reference standard is pending
-    frame = pd.DataFrame(
-        {
-            "case_id": [f"c{i}" for i in range(n)],
-            "patient_id": [f"p{i}" for i in range(n)],
-            "label": labels,
-            "score": rng.random(n).round(4).astype(str),
-            "reader_a": rng.integers(0, 2, n).astype(str),
-        }
-    )
-    plan = EvaluationPlan(histogram_edges=uniform_edges(4), thresholds=(0.5,))
-    release = evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="0" * 64)
-    assert release.statistics.agreement  # the unpoliced release has the reader table
-    assert sum(map(sum, release.statistics.agreement[0].counts)) == n  # it counts pending cases
-
-    policed, note = apply_policy(release, SitePolicy(min_cell=5))
-
-    # Small-cell rule (min cell 5, common practice): the table total minus the released
-    # case count would give the withheld pending count, so the tables leave with it.
-    assert policed.statistics.n_pending == 0
-    assert policed.statistics.agreement == ()
-    assert "statistics.agreement" in note.withheld

@@ -25,12 +25,14 @@ from flwr.clientapp import ClientApp
 from flwr.serverapp import Grid, ServerApp
 
 from coordinator.runs.inprocess import run_inprocess
+from site_agent.contract.node_config import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY
 from site_agent.contract.protocol import AdaptationPlan, EvaluationPlan, Operation, StudyProtocol
 from site_agent.contract.wire import SiteRequest
 from site_agent.disclosure.approvals import approve
-from site_agent.disclosure.gate import RefusalCode, disclosure_mod, refusal_reason
+from site_agent.disclosure.gate import disclosure_mod
 from site_agent.disclosure.ledger import ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy, UpdateRelease
+from site_agent.disclosure.refusals import RefusalCode, refusal_reason
 from site_agent.disclosure.update_release import (
     DECLINED_ERROR_CODE,
     NUM_EXAMPLES,
@@ -39,7 +41,6 @@ from site_agent.disclosure.update_release import (
     TRAIN_METRICS,
     train_config,
 )
-from site_agent.service import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY
 
 SITE = "fernbrook-county-hospital"
 SECRET = "PAT-SECRET-0042"

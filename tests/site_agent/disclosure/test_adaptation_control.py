@@ -9,13 +9,12 @@ from __future__ import annotations
 import pytest
 
 from site_agent.contract.adaptation_release import (
-    SUPPRESSED,
     AdaptationRelease,
     Performance,
     ThresholdPerformance,
-    control_adaptation,
 )
 from site_agent.contract.release import AucRecord, EstimateRecord
+from site_agent.disclosure.adaptation_control import SUPPRESSED, control_adaptation
 from site_agent.disclosure.policy import SitePolicy
 from site_agent.exceptions import DisclosureRefused
 from site_agent.statistics.proportions import wilson

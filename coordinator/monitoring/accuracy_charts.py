@@ -1,0 +1,172 @@
+"""Label-based drift of one site: CUSUM and EWMA charts on its accuracy, window by window.
+
+Sensitivity and specificity at one threshold (successes out of trials; pending labels are
+in neither) run through standardized binomial CUSUM and EWMA charts
+(:mod:`coordinator.monitoring.control_charts`), and each window's DeLong AUC with its
+standard error through the normal CUSUM and EWMA charts. Targets come from the baseline
+windows: the pooled proportion, and the inverse-variance weighted mean AUC, whose variance
+is added to each window's (Jones, Champ & Rigdon 2004 on estimated targets). Charts watch
+for a fall (``side="lower"``) and start after the baseline.
+
+A site's disclosure step may suppress a small confusion cell; :func:`usable_counts` then
+drops the proportion it corrupts for that window.
+
+References
+----------
+Page ES (1954). Continuous inspection schemes. Biometrika 41:100–115.
+doi:10.1093/biomet/41.1-2.100
+Roberts SW (1959). Control chart tests based on geometric moving averages.
+Technometrics 1:239–250. doi:10.1080/00401706.1959.10489860
+DeLong ER, DeLong DM, Clarke-Pearson DL (1988). Comparing the areas under two or more
+correlated receiver operating characteristic curves: a nonparametric approach.
+Biometrics 44:837–845. doi:10.2307/2531595
+Jones LA, Champ CW, Rigdon SE (2004). The run length distribution of the CUSUM with
+estimated parameters. Journal of Quality Technology 36:95–108.
+doi:10.1080/00224065.2004.11980254
+"""
+
+from __future__ import annotations
+
+import math
+from datetime import date
+
+import numpy as np
+
+from coordinator.monitoring.control_charts import (
+    CusumResult,
+    EwmaResult,
+    cusum_chart,
+    cusum_chart_proportion,
+    ewma_chart,
+    ewma_chart_proportion,
+)
+from coordinator.monitoring.findings import (
+    AUC,
+    SENSITIVITY,
+    SPECIFICITY,
+    DriftAlarm,
+    DriftSettings,
+    finite_or_none,
+    window_alarm,
+)
+from site_agent.contract.release import SiteRelease
+from site_agent.statistics.summaries import ConfusionCounts, ProportionName
+
+
+def confusion_at(release: SiteRelease, threshold: float | None) -> ConfusionCounts | None:
+    """Return the release's confusion counts at ``threshold``, or None if it has none."""
+    for c in release.statistics.confusion:
+        if c.threshold == threshold:
+            return c
+    return None
+
+
+def usable_counts(c: ConfusionCounts, name: ProportionName) -> tuple[int, int]:
+    """Return (successes, trials), or (0, 0) if a disclosure step may have zeroed a cell.
+
+    A site that suppresses a small confusion cell sets it to 0 and drops all four
+    proportions' patient moments; a genuine count has moments with at least one patient
+    per proportion that has trials. With moments dropped, a proportion is still usable
+    when neither of its cells is 0 (a suppressed cell reads 0).
+    """
+    successes, trials = c.counts(name)
+    moments = getattr(c, name)
+    if trials > 0 and moments.clusters == 0 and (successes == 0 or successes == trials):
+        return 0, 0
+    return successes, trials
+
+
+def chart_site(
+    site: str,
+    rows: list[dict[str, object]],
+    ordered: list[SiteRelease | None],
+    settings: DriftSettings,
+    threshold: float | None,
+    notes: list[str],
+) -> tuple[dict[str, float | None], dict[str, float], list[DriftAlarm]]:
+    """Chart one site's windows; return the targets, the limits and the alarms.
+
+    ``rows`` (one per window, in order) gain their chart statistics under ``"charts"``;
+    ``notes`` gains a line for each metric without a usable baseline target.
+    """
+    n_base = settings.baseline_windows
+    targets: dict[str, float | None] = {}
+    alarms: list[DriftAlarm] = []
+    monitored = rows[n_base:]
+    charts: dict[str, tuple[CusumResult, EwmaResult]] = {}
+    for name in (SENSITIVITY, SPECIFICITY):
+        successes = np.zeros(len(rows), dtype=np.int64)
+        trials = np.zeros(len(rows), dtype=np.int64)
+        for i, release in enumerate(ordered):
+            c = None if release is None else confusion_at(release, threshold)
+            if c is not None:
+                successes[i], trials[i] = usable_counts(c, name)  # type: ignore[arg-type]
+        base_trials = int(trials[:n_base].sum())
+        p0 = float(successes[:n_base].sum()) / base_trials if base_trials else math.nan
+        targets[name] = finite_or_none(p0)
+        if not 0.0 < p0 < 1.0:
+            notes.append(f"{name}: the baseline gives no target strictly between 0 and 1")
+            continue
+        # Page (1954) and Roberts (1959) on standardized binomial counts; a fall alarms.
+        options = {"target_rate": p0, "side": "lower"}
+        charts[name] = (
+            cusum_chart_proportion(
+                successes[n_base:], trials[n_base:], k=settings.cusum_k, h=settings.cusum_h,
+                **options,  # type: ignore[arg-type]
+            ),
+            ewma_chart_proportion(
+                successes[n_base:], trials[n_base:], lam=settings.ewma_lambda,
+                width=settings.ewma_width, **options,  # type: ignore[arg-type]
+            ),
+        )  # fmt: skip
+    auc = np.array([_num(r.get("auc")) for r in rows])
+    se = np.array([_num(r.get("auc_se")) for r in rows])
+    base = np.isfinite(auc[:n_base]) & np.isfinite(se[:n_base]) & (se[:n_base] > 0)
+    if base.any():
+        weights = 1.0 / se[:n_base][base] ** 2
+        # Inverse-variance weighted (fixed-effect) mean of the baseline AUCs and its variance.
+        target = float(np.sum(weights * auc[:n_base][base]) / np.sum(weights))
+        target_var = float(1.0 / np.sum(weights))
+        targets[AUC] = target
+        se_total = np.sqrt(se[n_base:] ** 2 + target_var)
+        charts[AUC] = (
+            cusum_chart(
+                auc[n_base:], se_total, target=target, k=settings.cusum_k, h=settings.cusum_h,
+                side="lower",
+            ),
+            ewma_chart(
+                auc[n_base:], se_total, target=target, lam=settings.ewma_lambda,
+                width=settings.ewma_width, side="lower",
+            ),
+        )  # fmt: skip
+    else:
+        targets[AUC] = None
+        notes.append("auc: no baseline window has an AUC with a standard error")
+    limits: dict[str, float] = {"cusum_h": settings.cusum_h}
+    for name, (cusum, ewma) in charts.items():
+        limits["ewma_limit"] = ewma.control_limit
+        for offset, row in enumerate(monitored):
+            chart_values = dict(row.get("charts", {}))  # type: ignore[call-overload]
+            chart_values[f"{name}_cusum"] = cusum.lower[offset]
+            chart_values[f"{name}_ewma"] = ewma.statistic[offset]
+            row["charts"] = chart_values
+        for method, result, values in (
+            ("cusum", cusum, cusum.lower),
+            ("ewma", ewma, ewma.statistic),
+        ):
+            for offset in result.alarms:
+                row = monitored[offset]
+                index = n_base + offset
+                start, end = row["window_start"], row["window_end"]
+                assert isinstance(start, date) and isinstance(end, date)
+                alarms.append(
+                    window_alarm(
+                        site, name, method, index, start, end, float(values[offset]),
+                        f"{name} fell below its baseline target ({method.upper()} alarm)",
+                    )
+                )  # fmt: skip
+    return targets, limits, alarms
+
+
+def _num(value: object) -> float:
+    return float(value) if isinstance(value, int | float) else math.nan

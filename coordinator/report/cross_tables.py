@@ -1,0 +1,70 @@
+"""Cross tabulations of the study report: 2×2 tables and agreement with readers.
+
+The 2×2 tables give index test result by reference standard per site and threshold
+(STARD 2015 item 23; Bossuyt et al., BMJ 2015;351:h5527). The readers table gives
+Cohen's kappa (unweighted, linear and quadratic weights) between the model and each
+reader, and paired DeLong differences in AUC, as the sites released them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from coordinator.pooling.study_results import MetricRow, StudyResults
+from coordinator.report.html_parts import esc, estimate_cell, html_table, site_label, slug
+
+
+def two_by_two_section(results: StudyResults) -> str:
+    """Return the 2×2 tables, one card per site and threshold."""
+    if not results.two_by_two:
+        return "<p>No cross tabulations were released.</p>"
+    cards, seen = [], dict[str, int]()
+    for t in results.two_by_two:
+        index = seen[t.site] = seen.get(t.site, 0) + 1
+        rows = [
+            ["Index test positive", str(t.tp), str(t.fp), str(t.tp + t.fp)],
+            ["Index test negative", str(t.fn), str(t.tn), str(t.fn + t.tn)],
+            ["Total", str(t.tp + t.fn), str(t.fp + t.tn), str(t.tp + t.fp + t.fn + t.tn)],
+        ]
+        cards.append(
+            html_table(
+                f"table-2x2-{slug(t.site)}-{index}",
+                f"{t.site}, threshold {t.threshold:g}",
+                ["", "Reference positive", "Reference negative", "Total"],
+                rows,
+            )
+        )
+    return (
+        '<p class="small">Index test result (model score at or above the threshold) by '
+        "reference standard, per site and threshold (STARD 2015 item 23).</p>"
+        f'<div class="cards">{"".join(cards)}</div>'
+    )
+
+
+def readers_table(results: StudyResults, sites: Sequence[str], rows: list[MetricRow]) -> str:
+    """Agreement (Cohen's kappa) and paired AUC comparisons with readers, per site."""
+    body = []
+    for site in sites:
+        kappas: dict[str, dict[str, MetricRow]] = {}
+        for r in rows:
+            if r.site == site and r.metric.startswith("kappa "):
+                kappas.setdefault(r.metric.removeprefix("kappa "), {})[r.method] = r
+        for pair, by_method in kappas.items():
+            kinds = ("cohen-kappa", "cohen-kappa-linear", "cohen-kappa-quadratic")
+            cells = [by_method.get(m) for m in kinds]
+            body.append(
+                [site_label(results, site), esc(pair), *(estimate_cell(c) for c in cells), ""]
+            )
+        for r in rows:
+            if r.site == site and r.metric.startswith("auc difference"):
+                who = r.metric.removeprefix("auc difference ")
+                body.append([site_label(results, site), esc(who), "", "", "", estimate_cell(r)])
+    if not body:
+        return ""
+    return html_table(
+        "table-readers",
+        "Agreement with readers (Cohen's kappa, 95% CI) and paired DeLong AUC differences",
+        ["Site", "Raters", "Kappa", "Linear weighted", "Quadratic weighted", "AUC difference"],
+        body,
+        text_columns=(0, 1),
+    )

@@ -1,0 +1,167 @@
+"""Formatting and HTML building blocks shared by the sections of the study report.
+
+Every string taken from the results goes through :func:`esc` (HTML escaping). Numbers
+follow one rule: proportions as percentages with one decimal, other metrics with three
+decimals; a value that is not finite is shown as a dash with its reason, never as zero.
+Sites appear in the order of the results, the pooled cohort last.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+import re
+from collections.abc import Container, Iterable, Sequence
+
+from coordinator.pooling.study_results import MetricRow, StudyResults
+from coordinator.report import plots
+
+POOLED = plots.POOLED_SITE
+DASH = "—"
+PERCENT_METRICS = frozenset(
+    {"sensitivity", "specificity", "ppv", "npv", "prevalence", "accuracy", "balanced_accuracy"}
+)
+"""Proportions shown as percentages with one decimal; other metrics get three decimals."""
+
+_LABELS = {
+    "auc": "AUC",
+    "sensitivity": "Sensitivity",
+    "specificity": "Specificity",
+    "ppv": "PPV",
+    "npv": "NPV",
+    "brier": "Brier score",
+    "ece": "ECE",
+    "calibration_slope": "Calibration slope",
+    "calibration_intercept": "Calibration intercept",
+    "kappa": "Cohen's κ",
+    "weighted_kappa": "Weighted κ",
+    "prevalence": "Prevalence",
+    "accuracy": "Accuracy",
+}
+_METHODS = {
+    "delong": "DeLong",
+    "delong-logit": "DeLong, logit",
+    "wilson": "Wilson",
+    "clopper-pearson": "Clopper–Pearson",
+    "reml": "REML",
+    "dl": "DerSimonian–Laird",
+    "dersimonian-laird": "DerSimonian–Laird",
+    "pm": "Paule–Mandel",
+    "fixed": "fixed effect",
+    "wald": "Wald",
+    "paule-mandel": "Paule–Mandel",
+}
+STATUS = {"released": "Released", "declined": "Declined", "silent": "No reply"}
+
+
+def esc(text: object) -> str:
+    """Return ``text`` HTML-escaped, quotes included."""
+    return html.escape(str(text), quote=True)
+
+
+def slug(text: str) -> str:
+    """Return ``text`` as a lowercase id fragment (letters, digits, hyphens)."""
+    return re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-") or "x"
+
+
+def metric_label(metric: str) -> str:
+    """Return the display name of a metric."""
+    if metric in _LABELS:
+        return _LABELS[metric]
+    words = metric.replace("_", " ")
+    if words.startswith("auc "):
+        return "AUC " + words[4:]
+    return words[:1].upper() + words[1:]
+
+
+def method_name(method: str) -> str:
+    """Return the display name of an interval or pooling method."""
+    return _METHODS.get(method, method)
+
+
+def num(metric: str, value: float) -> str:
+    """Format one value: percent with one decimal for proportions, else three decimals."""
+    if not math.isfinite(value):
+        return DASH
+    if metric in PERCENT_METRICS:
+        return f"{100 * value:.1f}%".replace("-0.0%", "0.0%")
+    return f"{value:.3f}".replace("-0.000", "0.000")  # no negative zero from rounding
+
+
+def interval_text(metric: str, lower: float, upper: float) -> str:
+    """Return ``lower–upper`` formatted, or an empty string if either is undefined."""
+    if not (math.isfinite(lower) and math.isfinite(upper)):
+        return ""
+    negative = num(metric, lower).startswith("-")
+    separator = " to " if negative else "–"  # a dash between negative numbers misreads
+    return f"{num(metric, lower)}{separator}{num(metric, upper)}"
+
+
+def estimate_cell(row: MetricRow | None) -> str:
+    """Return the inner HTML of a table cell: estimate (95% CI), or a dash and the reason."""
+    if row is None:
+        return f'{DASH} <span class="reason">not available</span>'
+    if not math.isfinite(row.estimate):
+        return f'{DASH} <span class="reason">{esc(row.reason or "undefined")}</span>'
+    ci = interval_text(row.metric, row.lower, row.upper)
+    ci_html = f' <span class="ci">({ci})</span>' if ci else ""
+    return f"{num(row.metric, row.estimate)}{ci_html}"
+
+
+def pvalue_text(p: float) -> str:
+    """Return a p-value with three decimals, ``<0.001``, or a dash if undefined."""
+    if not math.isfinite(p):
+        return DASH
+    return "<0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def html_table(
+    table_id: str,
+    caption: str,
+    header: Sequence[str],
+    rows: Iterable[Sequence[str]],
+    *,
+    text_columns: Container[int] = (0,),
+) -> str:
+    """Return a table; ``header`` and cells are HTML already.
+
+    Columns are right-aligned as numbers except those listed in ``text_columns``.
+    """
+    head = "".join(f"<th>{h}</th>" for h in header)
+    body = "".join(
+        "<tr>"
+        + "".join(
+            f"<td{'' if i in text_columns else ' class=num'}>{c}</td>" for i, c in enumerate(r)
+        )
+        + "</tr>"
+        for r in rows
+    )
+    return (
+        f'<table id="{table_id}"><caption>{esc(caption)}</caption>'
+        f"<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    )
+
+
+def html_figure(fig_id: str, svg: str, caption: str) -> str:
+    """Return a figure with its inline SVG and caption (HTML already)."""
+    return f'<figure id="{fig_id}">{svg}<figcaption>{caption}</figcaption></figure>'
+
+
+def site_order(results: StudyResults) -> list[str]:
+    """Return site names in the order of ``results.sites``, others after, pooled last."""
+    names = [s.site for s in results.sites]
+    for row in results.metrics:
+        if row.site not in names and row.site != POOLED:
+            names.append(row.site)
+    if any(r.site == POOLED for r in results.metrics):
+        names.append(POOLED)
+    return names
+
+
+def site_label(results: StudyResults, site: str) -> str:
+    """Return the site's name for a table cell, tagged if it is the development site."""
+    if site == POOLED:
+        return "<b>Pooled</b> <span class=small>(all released cases as one cohort)</span>"
+    roles = {s.site: s.role for s in results.sites}
+    tag = ' <span class="tag">development</span>' if roles.get(site) == "development" else ""
+    return f"{esc(site)}{tag}"

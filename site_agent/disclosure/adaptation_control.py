@@ -1,0 +1,79 @@
+"""The minimum cell size on what a fine-tuning request releases.
+
+:func:`control_adaptation` applies the site's minimum cell size to an
+:class:`~site_agent.contract.adaptation_release.AdaptationRelease`: it refuses a release
+whose test-set totals are small and suppresses small confusion cells with their partners in
+the same class (their counts become 0 and the sensitivity and specificity that rest on them
+are withheld). The gate (:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on
+every ``fine_tune`` reply before the release leaves.
+"""
+
+from __future__ import annotations
+
+from site_agent.contract.adaptation_release import AdaptationRelease, Performance
+from site_agent.contract.release import EstimateRecord
+from site_agent.disclosure.policy import SitePolicy, suppressed_confusion_cells
+from site_agent.disclosure.refusals import RefusalCode, refusal
+
+SUPPRESSED = "withheld: a confusion cell is below the site's minimum cell size"
+"""Reason on a sensitivity or specificity withheld with its suppressed cells."""
+
+
+def control_adaptation(
+    release: AdaptationRelease, policy: SitePolicy
+) -> tuple[AdaptationRelease, tuple[str, ...]]:
+    """Return the release as the site's minimum cell size lets it leave, and what was cut.
+
+    A count is releasable when it is 0 or at least ``min_cell`` (common practice in
+    statistical disclosure control). Test-set totals and the pool size must be releasable;
+    small confusion cells and their partners in the same class (the class totals are
+    released) are set to 0, and their sensitivity and specificity withheld.
+
+    Raises
+    ------
+    DisclosureRefused
+        With reason ``total_below_min_cell`` when a site total is small.
+    """
+    m = policy.min_cell
+    totals = (release.n_pool, release.n_test, release.n_test_positive, release.n_test_negative)
+    if not all(_ok(v, m) for v in totals):
+        raise refusal(RefusalCode.TOTAL_BELOW_MIN_CELL, "fine_tune")
+    suppressed: list[str] = []
+    before = _controlled(release.before, m, "before", suppressed)
+    points = tuple(
+        p.model_copy(update={"after": _controlled(p.after, m, f"points[{i}].after", suppressed)})
+        for i, p in enumerate(release.points)
+    )
+    out = release.model_copy(update={"before": before, "points": points})
+    return AdaptationRelease.model_validate(out.model_dump()), tuple(suppressed)
+
+
+def _ok(value: int, min_cell: int) -> bool:
+    return value == 0 or value >= min_cell
+
+
+def _controlled(perf: Performance, m: int, path: str, suppressed: list[str]) -> Performance:
+    rows = []
+    for i, t in enumerate(perf.at_thresholds):
+        cells = {"tp": t.tp, "fp": t.fp, "fn": t.fn, "tn": t.tn}
+        small = suppressed_confusion_cells(cells, m)
+        if not small:
+            rows.append(t)
+            continue
+        suppressed.extend(f"{path}.at_thresholds[{i}].{k}" for k in small)
+        rows.append(
+            t.model_copy(
+                update={
+                    **{k: 0 for k in small},
+                    "sensitivity": _withheld(t.sensitivity),
+                    "specificity": _withheld(t.specificity),
+                }
+            )
+        )
+    return perf.model_copy(update={"at_thresholds": tuple(rows)})
+
+
+def _withheld(e: EstimateRecord) -> EstimateRecord:
+    return e.model_copy(
+        update={"estimate": None, "lower": None, "upper": None, "se": None, "reason": SUPPRESSED}
+    )

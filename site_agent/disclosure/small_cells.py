@@ -1,0 +1,431 @@
+"""Small-cell control: what the site's policy does to a release before it leaves.
+
+:func:`apply_policy` takes the release a site computed and returns it as the site's policy
+lets it leave, with a :class:`DisclosureNote` of what was changed; the gate
+(:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on every evaluation and
+monitoring reply and sends the note beside the release.
+
+Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
+-------------------------------------------------------------------------------------
+1. Refused: a subgroup attribute the policy does not allow (checked on the request too,
+   before any data is read: :mod:`site_agent.disclosure.request_check`).
+2. Refused as case-level output: a histogram, calibration table or threshold list with
+   more entries than the site has cases (its resolution is then one case, not a bin).
+3. Refused: a small site total (cases, positives, negatives, patients); a small total in
+   any subgroup level. A small number of pending labels is withheld instead (pending cases
+   leave the release: their counts, the ``all`` histogram row and the agreement tables,
+   which count them too, are dropped).
+4. Refused: subgroup differences. Within an attribute, the cases in no released level
+   (site total minus the sum of levels) must not be small. Across two attributes, the
+   totals of any two levels must not differ by a small number: if one level nests in the
+   other, the difference isolates that many cases. Counts cannot tell nesting apart, so
+   the rule is applied to every cross-attribute pair.
+5. Small cells: confusion cells and agreement cells are suppressed (set to 0, listed in
+   the note; the threshold's patient moments are dropped with them). A small confusion
+   cell takes its partner in the same class with it (class totals are released). Histogram
+   and calibration bins are suppressed, with further bins until no row's suppressed sum is
+   small, or merged with their neighbours until every row of every bin is 0 or at least
+   ``m`` (the new edges are a subset of the old).
+6. With differential privacy on, every count and per-bin sum gets noise *first*
+   (:mod:`site_agent.disclosure.privacy_budget`); rules 2-5 then run on the noisy values, which is
+   post-processing. The exact site-level estimates and the patient moments are withheld,
+   since their sensitivity is not bounded; the unit of privacy is one case (observation).
+   Attribute counts are withheld under differential privacy.
+7. Attribute counts (case mix of a monitoring window): small levels are pooled under one
+   level name, with secondary pooling until the pooled count is 0 or at least ``m``; the
+   counts are withheld when pending cases are (they include them).
+
+Limits, said plainly
+--------------------
+Rule 4 checks pairs, not every linear combination of released counts (three or more
+subgroups can still be combined); it can refuse harmless pairs of unrelated attributes.
+Thresholds that fall inside histogram bins refine the bins they split; rule 5 does not
+look at that refinement. Exact estimates (AUC, calibration slope) of groups that pass the
+count rules are released as computed. Only differential privacy bounds what any
+combination of releases can reveal; the count rules are the customary first line.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Sequence
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict
+
+from site_agent.contract.release import POOLED_LEVELS, AttributeCounts, SiteRelease
+from site_agent.disclosure.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
+from site_agent.disclosure.privacy_budget import noised_release
+from site_agent.disclosure.refusals import RefusalCode, refusal
+from site_agent.statistics.summaries import (
+    AgreementTable,
+    CalibrationBins,
+    ConfusionCounts,
+    PatientMoments,
+    ScoreHistogram,
+    SufficientStatistics,
+)
+
+
+class DisclosureNote(BaseModel):
+    """What the site's policy did to a release; sent beside it and kept in the ledger."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    min_cell: int
+    small_cells: SmallCellAction
+    suppressed: tuple[str, ...] = ()
+    """Cells set to 0 because they were small (paths into the release)."""
+    merged: tuple[str, ...] = ()
+    """Histograms whose adjacent bins were merged (their edges changed)."""
+    withheld: tuple[str, ...] = ()
+    """Parts of the release left out or emptied (pending cases, exact estimates...)."""
+    epsilon: float | None = None
+    """Epsilon spent by this release, or None without differential privacy."""
+    noise_scale: float | None = None
+    """Laplace scale of the noise on every count and sum, or None."""
+
+
+def apply_policy(
+    release: SiteRelease, policy: SitePolicy, *, epsilon: float | None = None
+) -> tuple[SiteRelease, DisclosureNote]:
+    """Return the release as the policy lets it leave, and a note of what was changed.
+
+    Parameters
+    ----------
+    release
+        The release computed at the site.
+    policy
+        The site's policy.
+    epsilon
+        Epsilon to spend on noise, or None for no noise. The caller checks the budget.
+
+    Raises
+    ------
+    DisclosureRefused
+        When a rule in the module docstring refuses the release as a whole.
+    """
+    if any(s.attribute not in policy.allowed_subgroup_attributes for s in release.subgroups):
+        raise refusal(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED)
+    if any(a.attribute not in policy.allowed_subgroup_attributes for a in release.attribute_counts):
+        raise refusal(RefusalCode.SUBGROUP_ATTRIBUTE_NOT_ALLOWED)
+    note = _Note(policy)
+    if epsilon is not None:
+        noised = noised_release(release, epsilon)
+        release = noised.release
+        note.epsilon, note.noise_scale = epsilon, noised.noise_scale
+        note.withheld.extend(noised.withheld)
+        if release.attribute_counts:
+            release = release.model_copy(update={"attribute_counts": ()})
+            note.withheld.append("attribute_counts")
+    m = policy.min_cell
+    stats = release.statistics
+    _check_resolution(stats)
+    if not all(_ok(v, m) for v in _totals(stats)):
+        raise refusal(RefusalCode.TOTAL_BELOW_MIN_CELL)
+    for sub in release.subgroups:
+        if not all(_ok(v, m) for v in _totals(sub.statistics)):
+            raise refusal(RefusalCode.SUBGROUP_BELOW_MIN_CELL)
+    _check_subgroup_differences(release, m)
+    controlled = release.model_copy(
+        update={
+            "statistics": _controlled(stats, m, policy.small_cells, "statistics", note),
+            "subgroups": tuple(
+                sub.model_copy(
+                    update={
+                        "statistics": _controlled(
+                            sub.statistics,
+                            m,
+                            policy.small_cells,
+                            f"subgroups[{i}].statistics",
+                            note,
+                        )
+                    }
+                )
+                for i, sub in enumerate(release.subgroups)
+            ),
+        }
+    )
+    controlled = controlled.model_copy(
+        update={"attribute_counts": _attribute_counts(release.attribute_counts, m, note)}
+    )
+    # Rebuild through validation so the controlled release is a valid SiteRelease.
+    return SiteRelease.model_validate(controlled.model_dump()), note.freeze()
+
+
+class _Note:
+    def __init__(self, policy: SitePolicy) -> None:
+        self.policy = policy
+        self.suppressed: list[str] = []
+        self.merged: list[str] = []
+        self.withheld: list[str] = []
+        self.epsilon: float | None = None
+        self.noise_scale: float | None = None
+
+    def freeze(self) -> DisclosureNote:
+        return DisclosureNote(
+            min_cell=self.policy.min_cell,
+            small_cells=self.policy.small_cells,
+            suppressed=tuple(self.suppressed),
+            merged=tuple(self.merged),
+            withheld=tuple(self.withheld),
+            epsilon=self.epsilon,
+            noise_scale=self.noise_scale,
+        )
+
+
+def _ok(value: int, min_cell: int) -> bool:
+    """Return whether a count is 0 or at least ``min_cell`` (releasable; common practice)."""
+    return value == 0 or value >= min_cell
+
+
+def _totals(stats: SufficientStatistics) -> tuple[int, ...]:
+    return (stats.n_observations, stats.n_positive, stats.n_negative, stats.n_patients)
+
+
+def _check_resolution(stats: SufficientStatistics) -> None:
+    cases = stats.n_observations
+    sizes = (
+        len(stats.histogram.edges) - 1,
+        len(stats.calibration.edges) - 1,
+        len(stats.confusion),
+    )
+    if any(size > cases for size in sizes):
+        raise refusal(RefusalCode.CASE_LEVEL_OUTPUT)
+
+
+def _check_subgroup_differences(release: SiteRelease, m: int) -> None:
+    site = release.statistics
+    by_attribute: dict[str, list[SufficientStatistics]] = {}
+    for sub in release.subgroups:
+        by_attribute.setdefault(sub.attribute, []).append(sub.statistics)
+    for levels in by_attribute.values():
+        for total, parts in zip(
+            _class_totals(site), zip(*(_class_totals(s) for s in levels), strict=True), strict=True
+        ):
+            if not _ok(total - sum(parts), m):
+                raise refusal(RefusalCode.SUBGROUP_DIFFERENCE_BELOW_MIN_CELL)
+    attributes = list(by_attribute)
+    for i, a in enumerate(attributes):
+        for b in attributes[i + 1 :]:
+            for s in by_attribute[a]:
+                for t in by_attribute[b]:
+                    for x, y in zip(_class_totals(s), _class_totals(t), strict=True):
+                        if not _ok(abs(x - y), m):
+                            raise refusal(RefusalCode.SUBGROUP_DIFFERENCE_BELOW_MIN_CELL)
+
+
+def _class_totals(stats: SufficientStatistics) -> tuple[int, int, int]:
+    return (stats.n_observations, stats.n_positive, stats.n_negative)
+
+
+def _controlled(
+    stats: SufficientStatistics, m: int, action: SmallCellAction, path: str, note: _Note
+) -> SufficientStatistics:
+    """Apply rule 5 (small cells) and the pending-case rule to one set of statistics."""
+    histogram = stats.histogram
+    n_observations, n_pending = stats.n_observations, stats.n_pending
+    agreement = stats.agreement
+    if not _ok(n_pending, m):
+        note.withheld.append(f"{path}.pending")
+        if agreement:
+            # Agreement tables count pending cases too: their totals would give the count away.
+            note.withheld.append(f"{path}.agreement")
+            agreement = ()
+        n_observations -= n_pending
+        n_pending = 0
+        histogram = histogram.model_copy(
+            update={
+                "all": tuple(
+                    p + q for p, q in zip(histogram.positive, histogram.negative, strict=True)
+                )
+            }
+        )
+    return SufficientStatistics(
+        n_observations=n_observations,
+        n_positive=stats.n_positive,
+        n_negative=stats.n_negative,
+        n_pending=n_pending,
+        n_patients=stats.n_patients,
+        confusion=tuple(
+            _confusion(c, m, f"{path}.confusion[{i}]", note) for i, c in enumerate(stats.confusion)
+        ),
+        histogram=_histogram(histogram, m, action, f"{path}.histogram", note),
+        calibration=_calibration(stats.calibration, m, action, f"{path}.calibration", note),
+        agreement=tuple(
+            _agreement(t, m, f"{path}.agreement[{i}]", note) for i, t in enumerate(agreement)
+        ),
+    )
+
+
+def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionCounts:
+    cells = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
+    small = suppressed_confusion_cells(cells, m)
+    if not small:
+        return c
+    note.suppressed.extend(f"{path}.{k}" for k in small)
+    note.withheld.append(f"{path}.patient_moments")
+    empty = PatientMoments()
+    return ConfusionCounts(
+        threshold=c.threshold,
+        **{k: 0 if k in small else v for k, v in cells.items()},
+        sensitivity=empty,
+        specificity=empty,
+        ppv=empty,
+        npv=empty,
+    )
+
+
+def _agreement(t: AgreementTable, m: int, path: str, note: _Note) -> AgreementTable:
+    cells = [(i, j) for i, row in enumerate(t.counts) for j, v in enumerate(row) if not _ok(v, m)]
+    if not cells:
+        return t
+    note.suppressed.extend(f"{path}.counts[{i}][{j}]" for i, j in cells)
+    counts = tuple(
+        tuple(0 if (i, j) in cells else v for j, v in enumerate(row))
+        for i, row in enumerate(t.counts)
+    )
+    return t.model_copy(update={"counts": counts})
+
+
+def _groups(rows: Sequence[Sequence[int]], m: int) -> list[tuple[int, int]]:
+    """Group adjacent bins so every row's sum in a group is 0 or >= m, losing least order.
+
+    Among all such partitions into contiguous groups, dynamic programming picks the one
+    with the fewest (first row × second row) pairs inside a group, i.e. the fewest
+    positive-negative pairs whose order the merged histogram no longer shows (the AUC's
+    binning bound, :func:`site_agent.statistics.roc.histogram_auc`), and among those the most
+    groups.
+    Callers have made sure every row's total is itself 0 or >= m, so a partition exists.
+    """
+    bins = len(rows[0])
+    prefix = [[0, *itertools.accumulate(r)] for r in rows]
+
+    def total(row: int, start: int, end: int) -> int:
+        return prefix[row][end] - prefix[row][start]
+
+    inf = (float("inf"), 0)
+    best: list[tuple[float, int]] = [(0.0, 0), *([inf] * bins)]  # (lost pairs, -groups)
+    cut = [0] * (bins + 1)
+    for end in range(1, bins + 1):
+        for start in range(end):
+            if best[start] == inf:
+                continue
+            if not all(_ok(total(r, start, end), m) for r in range(len(rows))):
+                continue
+            lost = best[start][0] + total(0, start, end) * total(1, start, end)
+            candidate = (lost, best[start][1] - 1)
+            if candidate < best[end]:
+                best[end], cut[end] = candidate, start
+    groups: list[tuple[int, int]] = []
+    end = bins
+    while end > 0:
+        groups.append((cut[end], end))
+        end = cut[end]
+    return groups[::-1]
+
+
+def _histogram(
+    h: ScoreHistogram, m: int, action: SmallCellAction, path: str, note: _Note
+) -> ScoreHistogram:
+    pending = tuple(a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True))
+    rows = (h.positive, h.negative, pending)
+    if all(_ok(v, m) for row in rows for v in row):
+        return h
+    if action is SmallCellAction.MERGE:
+        groups = _groups(rows, m)
+        note.merged.append(path)
+        return h.coarsened((*(h.edges[a] for a, _ in groups), h.edges[-1]))
+    kept = []
+    for name, row in zip(("positive", "negative", "pending"), rows, strict=True):
+        small = _with_complements([row], {i for i, v in enumerate(row) if not _ok(v, m)}, m)
+        note.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(small))
+        kept.append(tuple(0 if i in small else v for i, v in enumerate(row)))
+    return ScoreHistogram(
+        edges=h.edges,
+        positive=kept[0],
+        negative=kept[1],
+        all=tuple(sum(col) for col in zip(*kept, strict=True)),
+    )
+
+
+def _with_complements(rows: Sequence[Sequence[int]], small: set[int], m: int) -> set[int]:
+    """Return ``small`` grown until each row's suppressed sum is 0 or at least ``m``.
+
+    Every row's total is released (cases, positives, negatives, pending), so the sum of
+    the suppressed entries of a row is its total minus what is kept: a small cell
+    suppressed alone would be recovered by subtraction. The nonzero bin with the smallest
+    count in the first row joins until no row's suppressed sum is small (secondary
+    suppression, common practice in statistical disclosure control).
+    """
+    small = set(small)
+    while not all(_ok(sum(row[i] for i in small), m) for row in rows):
+        rest = [i for i in range(len(rows[0])) if i not in small and any(r[i] for r in rows)]
+        if not rest:  # only possible when a row total is itself small (noisy counts)
+            break
+        small.add(min(rest, key=lambda i: (rows[0][i], i)))
+    return small
+
+
+def _calibration(
+    c: CalibrationBins, m: int, action: SmallCellAction, path: str, note: _Note
+) -> CalibrationBins:
+    negatives = tuple(n - k for n, k in zip(c.count, c.label_sum, strict=True))
+    rows = (c.count, c.label_sum, negatives)
+    if all(_ok(v, m) for row in rows for v in row):
+        return c
+    if action is SmallCellAction.MERGE:
+        groups = _groups(rows, m)
+        note.merged.append(path)
+        return c.coarsened((*(c.edges[a] for a, _ in groups), c.edges[-1]))
+    primary = {i for i in range(len(c.count)) if not all(_ok(r[i], m) for r in rows)}
+    small = _with_complements(rows, primary, m)
+    note.suppressed.extend(f"{path}[{i}]" for i in sorted(small))
+
+    def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
+        return tuple(type(v)(0) if i in small else v for i, v in enumerate(values))
+
+    return CalibrationBins(
+        edges=c.edges,
+        count=keep(c.count),
+        score_sum=keep(c.score_sum),
+        label_sum=keep(c.label_sum),
+        squared_error_sum=keep(c.squared_error_sum),
+    )
+
+
+def _attribute_counts(
+    mixes: tuple[AttributeCounts, ...], m: int, note: _Note
+) -> tuple[AttributeCounts, ...]:
+    """Rule 7: pool small attribute levels, and withhold the counts with pending cases.
+
+    Levels with a small count are pooled under :data:`POOLED_LEVELS`; while the pooled
+    total is itself small, the smallest remaining level joins it (secondary suppression),
+    so no small count can be recovered by subtracting released counts from the total.
+    The counts include pending cases, so when those are withheld the counts are too.
+    """
+    if not mixes:
+        return mixes
+    if "statistics.pending" in note.withheld:
+        note.withheld.append("attribute_counts")
+        return ()
+    out = []
+    for i, mix in enumerate(mixes):
+        ordered = sorted((c, level) for level, c in mix.as_dict().items() if c > 0)
+        pooled = [(c, level) for c, level in ordered if not _ok(c, m)]
+        kept = [(c, level) for c, level in ordered if _ok(c, m)]
+        while pooled and kept and not _ok(sum(c for c, _ in pooled), m):
+            pooled.append(kept.pop(0))
+        counts = dict((level, c) for c, level in kept)
+        if pooled:
+            counts[POOLED_LEVELS] = sum(c for c, _ in pooled)
+            note.merged.append(f"attribute_counts[{i}]")
+        levels = tuple(sorted(counts))
+        out.append(
+            AttributeCounts(
+                attribute=mix.attribute,
+                levels=levels,
+                counts=tuple(counts[level] for level in levels),
+            )
+        )
+    return tuple(out)
