@@ -110,7 +110,7 @@ class PlanSettings(_Record):
     drop: float = Field(default=0.05, gt=0.0, lt=0.5, description="AUC drop to detect.")
     alpha: float = Field(default=0.05, gt=0.0, lt=0.5, description="One-sided, new-site flag.")
     confidence: float = Field(default=0.95, gt=0.0, lt=1.0)
-    window_cases: int = Field(default=50, ge=10, description="Cases per monitoring window.")
+    window_cases: int = Field(default=100, ge=10, description="Cases per monitoring window.")
     horizon_windows: int = Field(default=DEFAULT_HORIZON_WINDOWS, ge=1)
     cusum_k: float = DEFAULT_CUSUM_K
     cusum_h: float = DEFAULT_CUSUM_H
