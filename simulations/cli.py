@@ -20,6 +20,7 @@ from rich.console import Console
 from coordinator.cli import add_meta_command
 from coordinator.monitoring.cli import add_monitor_command
 from simulations.drift_cli import add_rehearse_drift_command
+from simulations.planning_cli import add_plan_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
@@ -38,6 +39,7 @@ app.add_typer(site_app)
 add_meta_command(app)
 add_monitor_command(app)
 add_rehearse_drift_command(app)
+add_plan_command(app)
 
 
 @app.command(

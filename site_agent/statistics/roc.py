@@ -296,6 +296,39 @@ def delong(scores: ArrayLike, labels: ArrayLike, confidence: float = 0.95) -> Au
     return _auc_estimate(value, variance, m, n, "delong", None, confidence)
 
 
+def delong_batch(positives: ArrayLike, negatives: ArrayLike) -> tuple[FloatArray, FloatArray]:
+    """Return the AUC and DeLong variance of many score sets of one shape at once.
+
+    Row ``i`` of ``positives`` (shape ``(r, m)``) and of ``negatives`` (``(r, n)``) is one
+    data set; the answer equals :func:`delong` row by row, without its per-call checks
+    and intervals. Used where thousands of simulated sites are evaluated (planning).
+
+    Raises
+    ------
+    InputError
+        Arrays that are not 2-D with the same number of rows, fewer than two cases in a
+        class, or non-finite scores.
+
+    References
+    ----------
+    DeLong ER, DeLong DM, Clarke-Pearson DL (1988). Biometrics 44:837–845, eq. 4.
+    Sun X, Xu W (2014). IEEE Signal Processing Letters 21:1389–1393.
+    """
+    pos = np.asarray(positives, dtype=np.float64)
+    neg = np.asarray(negatives, dtype=np.float64)
+    if pos.ndim != 2 or neg.ndim != 2 or pos.shape[0] != neg.shape[0]:
+        raise InputError("positives and negatives must be 2-D with the same number of rows")
+    if pos.shape[1] < 2 or neg.shape[1] < 2:
+        raise InputError("each class needs at least two cases for the DeLong variance")
+    if not (np.all(np.isfinite(pos)) and np.all(np.isfinite(neg))):
+        raise InputError("scores must be finite")
+    v10, v01 = _placements(pos, neg)
+    value = v10.mean(axis=1)
+    # DeLong et al. (1988) eq. 4, one modality per row: var = S10/m + S01/n.
+    variance = v10.var(axis=1, ddof=1) / pos.shape[1] + v01.var(axis=1, ddof=1) / neg.shape[1]
+    return value, variance
+
+
 def paired_delong(
     scores_a: ArrayLike, scores_b: ArrayLike, labels: ArrayLike, confidence: float = 0.95
 ) -> AucDifference:

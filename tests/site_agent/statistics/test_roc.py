@@ -391,3 +391,27 @@ def test_mixed_histogram_auc_is_within_its_bound_of_the_exact_auc(
         labels = np.concatenate([y for _, _, y in sites])
         exact = roc_auc_score(labels, scores)  # scikit-learn reference
         assert abs(mixed.auc - exact) <= mixed.bound + 1e-12
+
+
+def test_delong_batch_equals_delong_row_by_row() -> None:
+    """The batched DeLong AUC and variance equal the one-site function on every row."""
+    from site_agent.statistics.roc import delong, delong_batch
+
+    rng = np.random.default_rng(42)
+    positives = np.round(rng.normal(1.0, 1.0, (6, 9)), 1)  # rounding makes ties
+    negatives = np.round(rng.normal(0.0, 1.0, (6, 14)), 1)
+    values, variances = delong_batch(positives, negatives)
+    for i in range(6):
+        scores = np.r_[positives[i], negatives[i]]
+        labels = np.r_[np.ones(9), np.zeros(14)]
+        one = delong(scores, labels)
+        assert values[i] == pytest.approx(one.auc)
+        assert variances[i] == pytest.approx(one.variance)
+
+
+def test_delong_batch_rejects_a_single_case_class() -> None:
+    """One case in a class leaves the DeLong variance undefined: invalid input here."""
+    from site_agent.statistics.roc import delong_batch
+
+    with pytest.raises(InputError, match="at least two cases"):
+        delong_batch(np.zeros((2, 1)), np.zeros((2, 3)))
