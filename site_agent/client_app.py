@@ -21,7 +21,6 @@ from site_agent.contract.wire import (
     decode_request,
     encode_reply,
 )
-from site_agent.data.predictions import read_table
 from site_agent.disclosure.gate import disclosure_mod
 from site_agent.disclosure.update_release import (
     NUM_EXAMPLES,
@@ -38,6 +37,7 @@ from site_agent.service import (
     SiteSettings,
     answer_with_update,
     declined_reply,
+    site_table,
 )
 
 SITE_MODS: list[Mod] = [disclosure_mod]
@@ -90,7 +90,7 @@ def train(msg: Message, context: Context) -> Message:
         raise ProtocolError("fine_tune needs a protocol that names a model and an adaptation plan")
     settings = SiteSettings.from_node_config(context.node_config)
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
-    data = local_data(read_table(settings.data_path), model, protocol.adaptation)
+    data = local_data(site_table(settings), model, protocol.adaptation)
     mu = msg.content.config_records[TRAIN_CONFIG].get(PROXIMAL_MU, 0.0)
     incoming = msg.content.array_records[TRAIN_ARRAYS]
     state, n = train_round(
