@@ -32,6 +32,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import warnings
 import zipfile
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -299,7 +300,9 @@ def bundle_bytes(model: torch.nn.Module, manifest: BundleManifest) -> bytes:
     if manifest.architecture is Architecture.TORCHSCRIPT:
         if not isinstance(model, torch.jit.ScriptModule):
             raise BundleError("a torchscript bundle needs a scripted or traced model")
-        torch.jit.save(model, weights)
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", "`torch.jit", DeprecationWarning)
+            torch.jit.save(model, weights)
     else:
         state = {k: v.detach().cpu().clone() for k, v in model.state_dict().items()}
         _check_state(state, manifest)
@@ -429,9 +432,12 @@ def _unpack(raw: bytes) -> tuple[BundleManifest, bytes]:
 
 def _load_torchscript(payload: bytes) -> torch.nn.Module:
     try:
-        model: torch.nn.Module = torch.jit.load(  # type: ignore[no-untyped-call]
-            io.BytesIO(payload), map_location="cpu"
-        )
+        with warnings.catch_warnings():
+            # torch 2.13 deprecates TorchScript; teams still bring such files, so we read them.
+            warnings.filterwarnings("ignore", "`torch.jit", DeprecationWarning)
+            model: torch.nn.Module = torch.jit.load(  # type: ignore[no-untyped-call]
+                io.BytesIO(payload), map_location="cpu"
+            )
     except Exception as exc:  # torch raises many types for damaged archives
         raise BundleError("model bundle holds no loadable TorchScript model") from exc
     if not all(bool(torch.isfinite(p).all()) for p in model.parameters()):

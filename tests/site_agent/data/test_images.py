@@ -161,5 +161,5 @@ def test_config_file_errors_name_the_field(tmp_path: Path) -> None:
         'categories = {a = ["A"]}\ncut_points = [1.0]\nbin_names = ["x", "y"]\n'
     )
 
-    with pytest.raises(InputError, match="image configuration is invalid at acquisition.0"):
+    with pytest.raises(InputError, match=r"image configuration is invalid at acquisition\.0"):
         ImageSiteConfig.load(path)
