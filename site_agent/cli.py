@@ -124,10 +124,8 @@ def _scored_table(
 
     config = None if image_config is None else ImageSiteConfig.load(image_config)
     frame = load_site_table(table, config)
-    if "score" in frame.columns:
-        return frame
-    if bundle is None:
-        raise InputError("the table has no score column: give the model with --bundle")
+    if "score" in frame.columns or bundle is None:
+        return frame  # without a bundle, validation names the missing score column
     # Imported here: torch costs seconds to import, and tables with scores never need it.
     from site_agent.training.model_bundle import load_bundle
 
