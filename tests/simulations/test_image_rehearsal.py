@@ -16,7 +16,6 @@ from simulations.image_rehearsal import ImageScenario, default_image_scenario, r
 
 
 @pytest.mark.slow
-@pytest.mark.filterwarnings("ignore::DeprecationWarning")
 def test_image_rehearsal_writes_the_study_report_with_vendor_subgroups(tmp_path: Path) -> None:
     """Three small sites release; subgroups carry the site-mapped vendor categories only."""
     base = default_image_scenario()

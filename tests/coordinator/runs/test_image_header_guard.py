@@ -100,7 +100,6 @@ def _leaks(text: str) -> list[str]:
     return [n for n in needles if n.casefold() in text.casefold()]
 
 
-@pytest.mark.filterwarnings("ignore::DeprecationWarning")
 def test_no_header_value_reaches_any_output(
     tmp_path: Path, caplog: pytest.LogCaptureFixture, capfd: pytest.CaptureFixture[str]
 ) -> None:
