@@ -34,7 +34,7 @@ from coordinator.runs.engines import Engine, run_study
 from simulations.image_shifts import ImageShift, apply_shift
 from simulations.phantoms import phantom_set
 from simulations.references import with_reference_lines
-from simulations.rehearsal import REPORT_FILE, RESULTS_FILE, RehearsalOutput
+from simulations.rehearsal import REPORT_FILE, RESULTS_FILE, PreparedStudy, RehearsalOutput
 from site_agent.contract.protocol import (
     AdaptationPlan,
     EvaluationPlan,
@@ -168,31 +168,9 @@ def rehearse_images(
     started = time.perf_counter()
     scenario = scenario or default_image_scenario()
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
-    rng = np.random.default_rng(scenario.seed)
-    say(f"drawing invented phantom images for {len(scenario.sites)} sites")
-    drawn = {s.slug: _site_images(s, scenario.seed + i, rng) for i, s in enumerate(scenario.sites)}
+    study = prepare_image_study(scenario, out, adapt=adapt, progress=say)
+    protocol, bundle_path, settings = study.protocol, study.bundle_path, study.settings
     development = scenario.sites[scenario.development_index]
-    images, labels = drawn[development.slug]
-    n_train = int(len(labels) * scenario.development_train_fraction)
-    say(f"training the CNN at {development.name} on {n_train} cases")
-    spec = ImagePreprocessing(size=INPUT_SIZE)
-    model = _train_cnn(images[:n_train], labels[:n_train], spec, scenario)
-    manifest = BundleManifest(
-        name="phantom-cnn",
-        architecture=Architecture.CNN,
-        image=spec,
-        cnn_channels=CNN_CHANNELS,
-        fine_tune_layers=FineTuneLayers.HEAD,
-    )
-    bundle_path = out / "model" / "model-bundle.zip"
-    bundle_path.parent.mkdir(parents=True, exist_ok=True)
-    sha256 = save_bundle(model, manifest, bundle_path)
-    protocol = _protocol(scenario, sha256, adapt)
-    drawn[development.slug] = (images[n_train:], labels[n_train:])
-    settings = [
-        _lay_out_site(s, *drawn[s.slug], protocol, out / "site-data") for s in scenario.sites
-    ]
     say(f"running the study on the {engine} engine")
     outcome = run_study(
         protocol, bundle_path, settings, engine=engine, workdir=out / "run", progress=say
@@ -224,6 +202,39 @@ def rehearse_images(
         exports=exports,
         seconds=time.perf_counter() - started,
     )
+
+
+def prepare_image_study(
+    scenario: ImageScenario, out: Path, *, adapt: bool = True, progress: Progress | None = None
+) -> PreparedStudy:
+    """Draw the sites' images, train and bundle the CNN, register the protocol, lay out sites."""
+    say = progress or (lambda _: None)
+    out.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(scenario.seed)
+    say(f"drawing invented phantom images for {len(scenario.sites)} sites")
+    drawn = {s.slug: _site_images(s, scenario.seed + i, rng) for i, s in enumerate(scenario.sites)}
+    development = scenario.sites[scenario.development_index]
+    images, labels = drawn[development.slug]
+    n_train = int(len(labels) * scenario.development_train_fraction)
+    say(f"training the CNN at {development.name} on {n_train} cases")
+    spec = ImagePreprocessing(size=INPUT_SIZE)
+    model = _train_cnn(images[:n_train], labels[:n_train], spec, scenario)
+    manifest = BundleManifest(
+        name="phantom-cnn",
+        architecture=Architecture.CNN,
+        image=spec,
+        cnn_channels=CNN_CHANNELS,
+        fine_tune_layers=FineTuneLayers.HEAD,
+    )
+    bundle_path = out / "model" / "model-bundle.zip"
+    bundle_path.parent.mkdir(parents=True, exist_ok=True)
+    sha256 = save_bundle(model, manifest, bundle_path)
+    protocol = _protocol(scenario, sha256, adapt)
+    drawn[development.slug] = (images[n_train:], labels[n_train:])
+    settings = [
+        _lay_out_site(s, *drawn[s.slug], protocol, out / "site-data") for s in scenario.sites
+    ]
+    return PreparedStudy(protocol, bundle_path, settings, [])
 
 
 _NOTES = (

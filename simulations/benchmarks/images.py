@@ -9,10 +9,14 @@ a manifest, then timed on one torch thread:
 - fine-tuning: full-batch Adam steps of the head-only CNN on the preprocessed images
   (images x steps per second).
 
+Then, on the image rehearsal's four invented sites (:mod:`simulations.image_rehearsal`),
+one evaluation round is timed three ways: scoring every site's images in a plain loop
+(load the bundle, read the manifest, score); the whole site work without Flower (the
+rounds benchmark's direct loop: score, evaluate, gate, ledger); and an evaluation round
+through the in-process engine. The ratios are the costs of the study machinery.
+
 Peak memory is the process's maximum resident set size (``resource.getrusage``).
-Run with ``python -m simulations.benchmarks.images``. Not yet measured: the cost of an
-image evaluation round through the Flower engine against this loop (no image rehearsal
-command exists yet).
+Run with ``python -m simulations.benchmarks.images``.
 """
 
 from __future__ import annotations
@@ -89,13 +93,47 @@ def main(argv: list[str] | None = None) -> None:
                 loss.backward()  # type: ignore[no-untyped-call]
                 optimizer.step()
         tune_s = time.perf_counter() - start
+        plain_s, direct_s, engine_s = _round_costs(root)
     peak_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     n = args.images
     print(f"images: {n} phantoms, 32x32 input, one torch thread (one core)")
     print(f"evaluation (read + preprocess + score): {n / evaluate_s:8.0f} images/s")
     print(f"scoring in a plain loop (in memory):    {n / loop_s:8.0f} images/s")
     print(f"fine-tuning, head only:                 {n * args.steps / tune_s:8.0f} image-steps/s")
+    print(
+        f"image evaluation round, 4 sites: plain scoring loop {plain_s:.2f} s, site work "
+        f"without Flower {direct_s:.2f} s, in-process engine {engine_s:.2f} s "
+        f"(engine / plain = {engine_s / plain_s:.1f})"
+    )
     print(f"peak resident memory:                   {peak_mib:8.0f} MiB")
+
+
+def _round_costs(root: Path) -> tuple[float, float, float]:
+    """Time one image evaluation round as a plain loop, as direct site work, on the engine."""
+    from coordinator.runs.engines import run_study
+    from simulations.benchmarks.rounds import direct_round
+    from simulations.image_rehearsal import default_image_scenario, prepare_image_study
+    from site_agent.service import site_table
+
+    study = prepare_image_study(default_image_scenario(), root / "study", adapt=False)
+    raw = study.bundle_path.read_bytes()
+    direct_round(study, raw)  # warm-up: imports and file cache
+    start = time.perf_counter()
+    for settings in study.settings:
+        load_bundle(raw).predict(site_table(settings))
+    plain_s = time.perf_counter() - start
+    start = time.perf_counter()
+    direct_round(study, raw)
+    direct_s = time.perf_counter() - start
+    start = time.perf_counter()
+    run_study(
+        study.protocol,
+        study.bundle_path,
+        study.settings,
+        engine="inprocess",
+        workdir=root / "run",
+    )
+    return plain_s, direct_s, time.perf_counter() - start
 
 
 if __name__ == "__main__":
