@@ -66,6 +66,15 @@ INPUT_SIZE = 32
 CNN_CHANNELS = (8, 16, 32)
 
 
+class ImageDrift(BaseModel):
+    """From case ``starts_at`` x n on (cases are in acquisition order), a further shift."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    starts_at: float = Field(gt=0.0, lt=1.0, description="Fraction of the site's timeline.")
+    shift: ImageShift
+
+
 class ImageSiteSpec(BaseModel):
     """One invented hospital of the image rehearsal."""
 
@@ -78,6 +87,9 @@ class ImageSiteSpec(BaseModel):
     storage: Literal["dicom", "png", "npy"] = Field(description="How the site keeps images.")
     manufacturer: str = Field(description="Scanner maker (DICOM header, or the site's column).")
     shift: ImageShift = Field(default_factory=ImageShift)
+    drift: ImageDrift | None = Field(
+        default=None, description="A change of scanner partway through the site's year."
+    )
 
 
 class ImageScenario(BaseModel):
@@ -205,9 +217,19 @@ def rehearse_images(
 
 
 def prepare_image_study(
-    scenario: ImageScenario, out: Path, *, adapt: bool = True, progress: Progress | None = None
+    scenario: ImageScenario,
+    out: Path,
+    *,
+    adapt: bool = True,
+    progress: Progress | None = None,
+    protocol_for: Callable[[str], StudyProtocol] | None = None,
+    small_cells: SmallCellAction = SmallCellAction.MERGE,
 ) -> PreparedStudy:
-    """Draw the sites' images, train and bundle the CNN, register the protocol, lay out sites."""
+    """Draw the sites' images, train and bundle the CNN, register the protocol, lay out sites.
+
+    ``protocol_for(sha256)``, if given, builds the protocol instead of the rehearsal's own
+    (the image monitoring rehearsal registers a monitoring protocol).
+    """
     say = progress or (lambda _: None)
     out.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(scenario.seed)
@@ -229,10 +251,11 @@ def prepare_image_study(
     bundle_path = out / "model" / "model-bundle.zip"
     bundle_path.parent.mkdir(parents=True, exist_ok=True)
     sha256 = save_bundle(model, manifest, bundle_path)
-    protocol = _protocol(scenario, sha256, adapt)
+    protocol = _protocol(scenario, sha256, adapt) if protocol_for is None else protocol_for(sha256)
     drawn[development.slug] = (images[n_train:], labels[n_train:])
     settings = [
-        _lay_out_site(s, *drawn[s.slug], protocol, out / "site-data") for s in scenario.sites
+        _lay_out_site(s, *drawn[s.slug], protocol, out / "site-data", small_cells)
+        for s in scenario.sites
     ]
     return PreparedStudy(protocol, bundle_path, settings, [])
 
@@ -250,6 +273,10 @@ def _site_images(
 ) -> tuple[np.ndarray, np.ndarray]:
     phantoms = phantom_set(spec.n_cases, seed=seed, prevalence=spec.prevalence)
     shifted = np.stack([apply_shift(im, spec.shift, rng) for im in phantoms.images])
+    if spec.drift is not None:
+        first = int(spec.drift.starts_at * spec.n_cases)
+        for i in range(first, spec.n_cases):
+            shifted[i] = apply_shift(shifted[i], spec.drift.shift, rng)
     return shifted, phantoms.labels
 
 
@@ -301,6 +328,7 @@ def _lay_out_site(
     labels: np.ndarray,
     protocol: StudyProtocol,
     directory: Path,
+    small_cells: SmallCellAction,
 ) -> SiteSettings:
     """Write the site's images, manifest, policy, approval and image configuration."""
     home = directory / spec.slug
@@ -324,7 +352,7 @@ def _lay_out_site(
         rows.append(row)
     pd.DataFrame(rows).to_csv(home / "manifest.csv", index=False)
     policy = SitePolicy(
-        small_cells=SmallCellAction.MERGE,
+        small_cells=small_cells,
         allowed_subgroup_attributes=(SUBGROUP,),
         allowed_operations=protocol.operations,
         updates=UpdateRelease(allowed=Operation.FINE_TUNE in protocol.operations),
