@@ -12,7 +12,7 @@ import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 from rich.console import Console
@@ -24,6 +24,9 @@ from simulations.planning_cli import add_plan_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
+
+if TYPE_CHECKING:
+    from simulations.rehearsal import RehearsalOutput
 
 app = typer.Typer(
     name="sitepool",
@@ -92,6 +95,18 @@ def rehearse_command(
             ),
         ),
     ] = True,
+    images: Annotated[
+        bool,
+        typer.Option(
+            "--images",
+            help=(
+                "Rehearse on invented phantom images instead of the feature table: sites keep "
+                "DICOM, PNG or NumPy images with a manifest, a small CNN is trained at the "
+                "development site, and the same study and report follow (--scenario, --sites, "
+                "--model and --data do not apply)."
+            ),
+        ),
+    ] = False,
 ) -> None:
     """Run a rehearsal and say where its report is."""
     from simulations.rehearsal import rehearse
@@ -122,6 +137,22 @@ def rehearse_command(
             chosen = chosen.with_sites(sites)
         if seed is not None:
             chosen = chosen.model_copy(update={"seed": seed})
+        if images:
+            from simulations.image_rehearsal import default_image_scenario, rehearse_images
+
+            image_scenario = default_image_scenario()
+            if seed is not None:
+                image_scenario = image_scenario.model_copy(update={"seed": seed})
+            with _flower_console_silenced():
+                output = rehearse_images(
+                    out,
+                    scenario=image_scenario,
+                    engine=engine,  # type: ignore[arg-type]
+                    adapt=adapt,
+                    progress=progress,
+                )
+            _done(console, output)
+            return
         dataset = None
         if data is not None:
             from simulations.dataset import load_feature_table
@@ -139,6 +170,10 @@ def rehearse_command(
             )
     except SitepoolError as exc:
         _fail(str(exc))
+    _done(console, output)
+
+
+def _done(console: Console, output: RehearsalOutput) -> None:
     for finding in output.results.findings:
         console.print(f"  {finding}")
     console.print(f"results: {output.results_path}")

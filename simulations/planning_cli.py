@@ -23,8 +23,7 @@ from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
 
 HELP = (
-    "Plan a consortium before recruiting: how many sites and cases per site give a "
-    "useful answer."
+    "Plan a consortium before recruiting: how many sites and cases per site give a useful answer."
 )
 plan_app = typer.Typer(name="plan", help=HELP, epilog=RESEARCH_NOTICE, no_args_is_help=True)
 

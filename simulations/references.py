@@ -27,7 +27,7 @@ from coordinator.pooling.study_results import StudyResults
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.contract.release import AucRecord
 from site_agent.exceptions import ProtocolError
-from site_agent.service import SiteSettings
+from site_agent.service import SiteSettings, site_table
 from site_agent.training.local_training import LocalData, fine_tune, local_data, performance
 from site_agent.training.model_bundle import load_bundle
 
@@ -88,6 +88,6 @@ def with_reference_lines(
 
     Reads each site's table where its site agent reads it; simulation only.
     """
-    tables = {s.site: pd.read_csv(s.data_path) for s in sites if s.site in outcome.local.releases}
+    tables = {s.site: site_table(s) for s in sites if s.site in outcome.local.releases}
     centralized = centralized_reference(tables, bundle_path, protocol)
     return add_fine_tuning(results, protocol, outcome, centralized=centralized)

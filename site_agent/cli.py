@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 from typing import Annotated
 
+import pandas as pd
 import typer
 from rich.console import Console
 from rich.table import Table
@@ -17,13 +18,13 @@ from site_agent.contract.release import (
     EstimateRecord,
     SiteRelease,
 )
-from site_agent.data.predictions import load_predictions
+from site_agent.data.predictions import validate_predictions
 from site_agent.disclosure.approvals import approve, list_approvals
 from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
 from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
-from site_agent.exceptions import SitepoolError
+from site_agent.exceptions import InputError, SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
 from site_agent.statistics.metrics import MetricsSummary, summarize
 
@@ -43,7 +44,13 @@ site_app = typer.Typer(
 )
 def evaluate_command(
     predictions: Annotated[
-        Path, typer.Argument(help="Predictions table, CSV or Parquet (one row per case).")
+        Path,
+        typer.Argument(
+            help=(
+                "Predictions table or image manifest, CSV or Parquet (one row per case; an "
+                "'image' column of DICOM, PNG or .npy paths makes it an image manifest)."
+            )
+        ),
     ],
     as_json: Annotated[
         bool, typer.Option("--json", help="Print the release JSON exactly as it would be sent.")
@@ -66,15 +73,34 @@ def evaluate_command(
             ),
         ),
     ] = None,
+    bundle: Annotated[
+        Path | None,
+        typer.Option(
+            "--bundle",
+            help=(
+                "Model bundle that scores a table without a score column (an image manifest "
+                "or a feature table); checked against the protocol's model hash if one is given."
+            ),
+        ),
+    ] = None,
+    image_config: Annotated[
+        Path | None,
+        typer.Option(
+            "--image-config",
+            help="The site's image configuration (JSON or TOML): acquisition subgroup mapping.",
+        ),
+    ] = None,
 ) -> None:
     """Evaluate a predictions table and show what would leave the site."""
     try:
         if protocol is None:
             plan, protocol_hash = EvaluationPlan(), UNREGISTERED_PROTOCOL
+            expected = None
         else:
             study = StudyProtocol.load(protocol)
             plan, protocol_hash = study.evaluation, study.content_hash()
-        table = load_predictions(predictions)
+            expected = None if study.model is None else study.model.sha256
+        table = validate_predictions(_scored_table(predictions, bundle, image_config, expected))
         release = evaluate_site(
             table, plan, site=site or predictions.stem, protocol_hash=protocol_hash
         )
@@ -90,6 +116,22 @@ def evaluate_command(
         typer.echo(release.to_json())
         return
     _render(release, summary, Console(width=120))
+
+
+def _scored_table(
+    table: Path, bundle: Path | None, image_config: Path | None, expected_sha256: str | None
+) -> pd.DataFrame:
+    """Read the site's table (image manifests checked) and score it with ``bundle`` if needed."""
+    from site_agent.data.images import ImageSiteConfig, load_site_table
+
+    config = None if image_config is None else ImageSiteConfig.load(image_config)
+    frame = load_site_table(table, config)
+    if "score" in frame.columns or bundle is None:
+        return frame  # without a bundle, validation names the missing score column
+    # Imported here: torch costs seconds to import, and tables with scores never need it.
+    from site_agent.training.model_bundle import load_bundle
+
+    return frame.assign(score=load_bundle(bundle, expected_sha256).predict(frame))
 
 
 def _ci(e: EstimateRecord) -> str:
@@ -304,4 +346,90 @@ def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDG
         typer.echo(f"ledger check FAILED: {result.problem}", err=True)
         raise typer.Exit(code=1)
     typer.echo(f"ledger intact: {result.entries} entries, hash chain unbroken")
+    typer.echo(RESEARCH_NOTICE)
+
+
+# --- fine-tuning at the site ----------------------------------------------------------------
+
+
+@site_app.command(
+    "fine-tune",
+    help=(
+        "Fine-tune the protocol's model on this site's cases as its adaptation plan says, and "
+        "show what would leave the site (held-out test-set performance only)."
+    ),
+    epilog=RESEARCH_NOTICE,
+)
+def fine_tune_command(
+    table: Annotated[Path, typer.Argument(help="Image manifest or feature table, CSV or Parquet.")],
+    protocol: Annotated[
+        Path, typer.Option("--protocol", help="Study protocol JSON naming the model and plan.")
+    ],
+    bundle: Annotated[Path, typer.Option("--bundle", help="The protocol's model bundle.")],
+    image_config: Annotated[
+        Path | None,
+        typer.Option("--image-config", help="The site's image configuration (JSON or TOML)."),
+    ] = None,
+    site: Annotated[
+        str | None, typer.Option("--site", help="Site name; default: the file name's stem.")
+    ] = None,
+    save: Annotated[
+        Path | None,
+        typer.Option(
+            "--save",
+            help="Also write the model fine-tuned on the whole local pool as a new bundle "
+            "(it stays at the site).",
+        ),
+    ] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the release JSON.")] = False,
+) -> None:
+    """Run the protocol's site-local fine-tuning grid and print the release."""
+    try:
+        study = StudyProtocol.load(protocol)
+        if study.model is None or study.adaptation is None:
+            raise InputError("fine-tuning needs a protocol with a model and an adaptation plan")
+        from site_agent.data.images import ImageSiteConfig, load_site_table
+        from site_agent.training.local_training import (
+            adapt_site,
+            get_state,
+            local_data,
+            local_update,
+            with_state,
+        )
+        from site_agent.training.model_bundle import load_bundle, save_bundle
+
+        model = load_bundle(bundle, study.model.sha256)
+        config = None if image_config is None else ImageSiteConfig.load(image_config)
+        data = local_data(load_site_table(table, config), model, study.adaptation)
+        release = adapt_site(
+            data,
+            model,
+            study.adaptation,
+            study.evaluation.thresholds,
+            site=site or table.stem,
+            protocol_hash=study.content_hash(),
+        )
+        if save is not None:
+            update = local_update(data, model, study.adaptation)
+            initial = get_state(model.model)
+            tuned = with_state(model, {k: initial[k] + update[k] for k in initial})
+            digest = save_bundle(tuned, model.manifest, save)
+            if not as_json:
+                typer.echo(f"fine-tuned bundle written, SHA-256 {digest}")
+    except SitepoolError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(code=2) from exc
+    if as_json:
+        typer.echo(release.model_dump_json(indent=2))
+        return
+    typer.echo(f"site fine-tuning: {release.site}, protocol {release.protocol_hash}")
+    typer.echo(
+        f"training pool {release.n_pool} cases; held-out test {release.n_test} "
+        f"({release.n_test_positive} disease, {release.n_test_negative} no disease)"
+    )
+    typer.echo(f"AUC before fine-tuning: {_auc_text(release.before.auc)}")
+    for point in release.points:
+        typer.echo(
+            f"  {point.n_used:>5} cases, seed {point.seed}: AUC {_auc_text(point.after.auc)}"
+        )
     typer.echo(RESEARCH_NOTICE)

@@ -22,7 +22,6 @@ from site_agent.contract.wire import (
     decode_request,
     encode_reply,
 )
-from site_agent.data.predictions import read_table
 from site_agent.disclosure.gate import disclosure_mod
 from site_agent.disclosure.update_release import (
     NUM_EXAMPLES,
@@ -33,7 +32,7 @@ from site_agent.disclosure.update_release import (
     read_train_request,
 )
 from site_agent.exceptions import ProtocolError
-from site_agent.service import SiteSettings, answer_with_update, declined_reply
+from site_agent.service import SiteSettings, answer_with_update, declined_reply, site_table
 
 SITE_MODS: list[Mod] = [disclosure_mod]
 """Mods applied to every message this app handles, outermost first."""
@@ -85,7 +84,7 @@ def train(msg: Message, context: Context) -> Message:
         raise ProtocolError("fine_tune needs a protocol that names a model and an adaptation plan")
     settings = SiteSettings.from_node_config(context.node_config)
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
-    data = local_data(read_table(settings.data_path), model, protocol.adaptation)
+    data = local_data(site_table(settings), model, protocol.adaptation)
     mu = msg.content.config_records[TRAIN_CONFIG].get(PROXIMAL_MU, 0.0)
     incoming = msg.content.array_records[TRAIN_ARRAYS]
     state, n = train_round(

@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from site_agent.contract.adaptation_release import AdaptationRelease
 from site_agent.contract.node_config import (
     DATA_PATH_KEY,
+    IMAGE_CONFIG_KEY,
     LEDGER_PATH_KEY,
     POLICY_PATH_KEY,
     SITE_NAME_KEY,
@@ -35,7 +36,7 @@ from site_agent.contract.wire import (
     SiteRequest,
     TimeWindow,
 )
-from site_agent.data.predictions import Predictions, read_table, validate_predictions
+from site_agent.data.predictions import Predictions, validate_predictions
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import (
     BundleError,
@@ -46,6 +47,7 @@ from site_agent.exceptions import (
 )
 
 logger = logging.getLogger(__name__)
+
 
 _UNEXPECTED = "the site agent failed unexpectedly; details are in the site's own log"
 
@@ -65,6 +67,7 @@ class SiteSettings(BaseModel):
     data_path: Path
     policy_path: Path | None = None
     ledger_path: Path | None = None
+    image_config_path: Path | None = None
 
     @classmethod
     def from_node_config(cls, node_config: Mapping[str, bool | int | float | str]) -> SiteSettings:
@@ -80,6 +83,7 @@ class SiteSettings(BaseModel):
             "data_path": DATA_PATH_KEY,
             "policy_path": POLICY_PATH_KEY,
             "ledger_path": LEDGER_PATH_KEY,
+            "image_config_path": IMAGE_CONFIG_KEY,
         }
         values = {
             field: str(node_config[key])
@@ -100,6 +104,8 @@ class SiteSettings(BaseModel):
             config[POLICY_PATH_KEY] = str(self.policy_path)
         if self.ledger_path is not None:
             config[LEDGER_PATH_KEY] = str(self.ledger_path)
+        if self.image_config_path is not None:
+            config[IMAGE_CONFIG_KEY] = str(self.image_config_path)
         return config
 
 
@@ -177,7 +183,7 @@ def declined_reply(site: str, request_id: str, exc: BaseException) -> SiteReply:
 
 def _evaluate(request: SiteRequest, bundle: bytes | None, settings: SiteSettings) -> SiteRelease:
     protocol = _checked_protocol(request)
-    frame = read_table(settings.data_path)
+    frame = site_table(settings)
     if "score" not in frame.columns:
         frame = _scored(frame, protocol, bundle)
     predictions = validate_predictions(frame)
@@ -217,7 +223,7 @@ def _fine_tune(
     from site_agent.training.model_bundle import load_bundle
 
     model = load_bundle(bundle, expected_sha256=protocol.model.sha256)
-    data = local_data(read_table(settings.data_path), model, protocol.adaptation)
+    data = local_data(site_table(settings), model, protocol.adaptation)
     thresholds = protocol.evaluation.thresholds
     if weights is not None:
         measured = evaluate_state(
@@ -239,6 +245,24 @@ def _fine_tune(
     )
     update = dict(local_update(data, model, protocol.adaptation)) if request.return_update else None
     return release, update
+
+
+def site_table(settings: SiteSettings) -> pd.DataFrame:
+    """Read the site's table; an image manifest gets its images checked and attributes mapped.
+
+    Raises
+    ------
+    InputError
+        If the table, an image path or the image configuration is invalid.
+    """
+    from site_agent.data.images import ImageSiteConfig, load_site_table
+
+    config = (
+        None
+        if settings.image_config_path is None
+        else ImageSiteConfig.load(settings.image_config_path)
+    )
+    return load_site_table(settings.data_path, config)
 
 
 def window_predictions(predictions: Predictions, window: TimeWindow) -> Predictions:

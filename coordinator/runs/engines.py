@@ -158,7 +158,7 @@ def _absolute(site: SiteSettings) -> SiteSettings:
     """Resolve a site's paths: Flower's processes do not share our working directory."""
     paths = {
         name: getattr(site, name).resolve()
-        for name in ("data_path", "policy_path", "ledger_path")
+        for name in ("data_path", "policy_path", "ledger_path", "image_config_path")
         if getattr(site, name) is not None
     }
     return site.model_copy(update=paths)

@@ -14,6 +14,7 @@ SITE_NAME_KEY = "site-name"
 DATA_PATH_KEY = "data-path"
 POLICY_PATH_KEY = "policy-path"
 LEDGER_PATH_KEY = "ledger-path"
+IMAGE_CONFIG_KEY = "image-config-path"
 """Keys of a SuperNode's ``node_config`` that configure the site agent."""
 
 UNNAMED_SITE = "unnamed-site"

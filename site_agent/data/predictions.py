@@ -18,6 +18,8 @@ A site keeps a table of the model's outputs beside the reference standard. Colum
     ISO 8601 acquisition date; may be empty.
 ``feature_*`` (optional)
     Model input features for a site that runs the model locally; never case attributes.
+``image`` (optional)
+    Path of the case's image (see :mod:`site_agent.data.images`); never a case attribute.
 
 Every other column is a case attribute usable for subgroups (``scanner_vendor``, ``sex``...).
 
@@ -44,6 +46,7 @@ READER_PREFIX = "reader_"
 FEATURE_PREFIX = "feature_"
 CATEGORY_COLUMN = "category"
 DATE_COLUMN = "acquired_on"
+IMAGE_COLUMN = "image"
 PENDING = -1
 """Value of :attr:`Predictions.label` for a case whose reference standard is pending."""
 MISSING = -1
@@ -174,7 +177,7 @@ def validate_predictions(frame: pd.DataFrame) -> Predictions:
     readers = {c: _calls(frame, c) for c in columns if c.startswith(READER_PREFIX)}
     acquired_on = _dates(frame) if DATE_COLUMN in frame.columns else None
     features = {c: _features(frame, c) for c in columns if c.startswith(FEATURE_PREFIX)}
-    reserved = set(REQUIRED_COLUMNS) | {CATEGORY_COLUMN, DATE_COLUMN}
+    reserved = set(REQUIRED_COLUMNS) | {CATEGORY_COLUMN, DATE_COLUMN, IMAGE_COLUMN}
     attributes = {
         c: _attribute(frame, c)
         for c in columns

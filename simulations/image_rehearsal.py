@@ -1,0 +1,417 @@
+"""The image rehearsal: the whole study on invented phantom images at invented hospitals.
+
+Each site of the :class:`ImageScenario` draws its own phantom cases
+(:mod:`simulations.phantoms`), passes them through its scanner's acquisition shift
+(:mod:`simulations.image_shifts`, every parameter in the scenario below) and stores them
+as a hospital would: DICOM files (written with pydicom, the vendor in the header), PNG
+files or NumPy arrays, listed in an image manifest. The development site trains the small
+CNN (:func:`site_agent.training.image_models.build_cnn`) on part of its cases; the bundle
+(with its preprocessing, fine-tuning limited to the last layer) then goes through the same
+protocol, site agents, disclosure gate, ledgers and coordinator as the feature-table
+rehearsal, and the same report is written.
+
+Invented images of invented hospitals, for rehearsal only; sitepool is a research tool, not
+a medical device.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from datetime import date, timedelta
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+import pandas as pd
+import torch
+from pydantic import BaseModel, ConfigDict, Field
+
+from coordinator.pooling.assemble import build_results
+from coordinator.pooling.sites import SiteInfo
+from coordinator.report.exports import write_exports
+from coordinator.report.study_report import render_report
+from coordinator.runs.engines import Engine, run_study
+from simulations.image_shifts import ImageShift, apply_shift
+from simulations.phantoms import phantom_set
+from simulations.references import with_reference_lines
+from simulations.rehearsal import REPORT_FILE, RESULTS_FILE, PreparedStudy, RehearsalOutput
+from site_agent.contract.protocol import (
+    AdaptationPlan,
+    EvaluationPlan,
+    ModelReference,
+    Operation,
+    StudyProtocol,
+    uniform_edges,
+)
+from site_agent.data.images import AcquisitionRule, DicomKeyword, ImageSiteConfig
+from site_agent.disclosure.approvals import approve
+from site_agent.disclosure.policy import SitePolicy, SmallCellAction, UpdateRelease
+from site_agent.service import SiteSettings
+from site_agent.training.image_models import (
+    FineTuneLayers,
+    ImagePreprocessing,
+    build_cnn,
+    preprocess,
+)
+from site_agent.training.model_bundle import (
+    Architecture,
+    BundleManifest,
+    save_bundle,
+    single_thread,
+)
+
+Progress = Callable[[str], None]
+SUBGROUP = "scanner_vendor"
+INPUT_SIZE = 32
+CNN_CHANNELS = (8, 16, 32)
+
+
+class ImageDrift(BaseModel):
+    """From case ``starts_at`` x n on (cases are in acquisition order), a further shift."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    starts_at: float = Field(gt=0.0, lt=1.0, description="Fraction of the site's timeline.")
+    shift: ImageShift
+
+
+class ImageSiteSpec(BaseModel):
+    """One invented hospital of the image rehearsal."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    name: str
+    slug: str = Field(pattern=r"^[a-z0-9-]+$")
+    n_cases: int = Field(ge=20, le=5000)
+    prevalence: float = Field(gt=0.0, lt=1.0)
+    storage: Literal["dicom", "png", "npy"] = Field(description="How the site keeps images.")
+    manufacturer: str = Field(description="Scanner maker (DICOM header, or the site's column).")
+    shift: ImageShift = Field(default_factory=ImageShift)
+    drift: ImageDrift | None = Field(
+        default=None, description="A change of scanner partway through the site's year."
+    )
+
+
+class ImageScenario(BaseModel):
+    """Sites, development cases and training settings of an image rehearsal."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    seed: int = 2031
+    sites: tuple[ImageSiteSpec, ...]
+    development_index: int = 0
+    development_train_fraction: float = Field(default=0.6, gt=0.0, lt=1.0)
+    train_epochs: int = Field(default=25, ge=1)
+    batch_size: int = Field(default=32, ge=1)
+    learning_rate: float = Field(default=0.01, gt=0.0)
+
+
+def default_image_scenario() -> ImageScenario:
+    """Four invented hospitals, one per storage kind, each with its own scanner shift."""
+    return ImageScenario(
+        sites=(
+            ImageSiteSpec(
+                name="Northgate General",
+                slug="northgate",
+                n_cases=400,
+                prevalence=0.4,
+                storage="npy",
+                manufacturer="Northwind Imaging",
+            ),
+            ImageSiteSpec(
+                name="Riverside Infirmary",
+                slug="riverside",
+                n_cases=160,
+                prevalence=0.35,
+                storage="dicom",
+                manufacturer="Meridian Medical Systems",
+                shift=ImageShift(bias_amplitude=0.35, noise_sigma=0.06, noise="rician"),
+            ),
+            ImageSiteSpec(
+                name="Lowmoor Community Hospital",
+                slug="lowmoor",
+                n_cases=160,
+                prevalence=0.3,
+                storage="png",
+                manufacturer="Northwind Imaging",
+                shift=ImageShift(blur_sigma=0.9, resolution=0.6, gamma=1.4),
+            ),
+            ImageSiteSpec(
+                name="Kestrel Valley Clinic",
+                slug="kestrel-valley",
+                n_cases=160,
+                prevalence=0.45,
+                storage="dicom",
+                manufacturer="Meridian Medical Systems",
+                shift=ImageShift(ringing=0.3, contrast=0.7, noise_sigma=0.08),
+            ),
+        )
+    )
+
+
+IMAGE_CONFIG = ImageSiteConfig(
+    acquisition=(
+        AcquisitionRule(
+            attribute=SUBGROUP,
+            keyword=DicomKeyword.MANUFACTURER,
+            categories={"vendor_n": ("Northwind",), "vendor_m": ("Meridian",)},
+        ),
+    )
+)
+"""Every invented site's image configuration: makers mapped to two vendor letters."""
+
+
+def rehearse_images(
+    out: Path,
+    *,
+    scenario: ImageScenario | None = None,
+    engine: Engine = "inprocess",
+    adapt: bool = True,
+    progress: Progress | None = None,
+) -> RehearsalOutput:
+    """Run the image rehearsal and write results, exports and report to ``out``.
+
+    Raises
+    ------
+    DeploymentError
+        If the engine fails or fewer sites than the quorum release statistics.
+    """
+    say = progress or (lambda _: None)
+    started = time.perf_counter()
+    scenario = scenario or default_image_scenario()
+    out = Path(out)
+    study = prepare_image_study(scenario, out, adapt=adapt, progress=say)
+    protocol, bundle_path, settings = study.protocol, study.bundle_path, study.settings
+    development = scenario.sites[scenario.development_index]
+    say(f"running the study on the {engine} engine")
+    outcome = run_study(
+        protocol, bundle_path, settings, engine=engine, workdir=out / "run", progress=say
+    )
+    info = {
+        s.name: SiteInfo(
+            role="development" if s is development else "external",
+            attributes={"storage": s.storage},
+            description=_describe(s),
+        )
+        for s in scenario.sites
+    }
+    say("pooling the releases and writing the report")
+    results = build_results(protocol, outcome.rounds[-1], engine=engine, sites=info, notes=_NOTES)
+    if outcome.fine_tuning is not None:
+        say("adding the adaptation curves and the four reference lines")
+        results = with_reference_lines(
+            results, protocol, outcome.fine_tuning, bundle_path, settings
+        )
+    results_path = out / RESULTS_FILE
+    results.write_json(results_path)
+    exports = tuple(write_exports(results, out))
+    report_path = render_report(results, out / REPORT_FILE)
+    return RehearsalOutput(
+        results=results,
+        directory=out,
+        results_path=results_path,
+        report_path=report_path,
+        exports=exports,
+        seconds=time.perf_counter() - started,
+    )
+
+
+def prepare_image_study(
+    scenario: ImageScenario,
+    out: Path,
+    *,
+    adapt: bool = True,
+    progress: Progress | None = None,
+    protocol_for: Callable[[str], StudyProtocol] | None = None,
+    small_cells: SmallCellAction = SmallCellAction.MERGE,
+) -> PreparedStudy:
+    """Draw the sites' images, train and bundle the CNN, register the protocol, lay out sites.
+
+    ``protocol_for(sha256)``, if given, builds the protocol instead of the rehearsal's own
+    (the image monitoring rehearsal registers a monitoring protocol).
+    """
+    say = progress or (lambda _: None)
+    out.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(scenario.seed)
+    say(f"drawing invented phantom images for {len(scenario.sites)} sites")
+    drawn = {s.slug: _site_images(s, scenario.seed + i, rng) for i, s in enumerate(scenario.sites)}
+    development = scenario.sites[scenario.development_index]
+    images, labels = drawn[development.slug]
+    n_train = int(len(labels) * scenario.development_train_fraction)
+    say(f"training the CNN at {development.name} on {n_train} cases")
+    spec = ImagePreprocessing(size=INPUT_SIZE)
+    model = _train_cnn(images[:n_train], labels[:n_train], spec, scenario)
+    manifest = BundleManifest(
+        name="phantom-cnn",
+        architecture=Architecture.CNN,
+        image=spec,
+        cnn_channels=CNN_CHANNELS,
+        fine_tune_layers=FineTuneLayers.HEAD,
+    )
+    bundle_path = out / "model" / "model-bundle.zip"
+    bundle_path.parent.mkdir(parents=True, exist_ok=True)
+    sha256 = save_bundle(model, manifest, bundle_path)
+    protocol = _protocol(scenario, sha256, adapt) if protocol_for is None else protocol_for(sha256)
+    drawn[development.slug] = (images[n_train:], labels[n_train:])
+    settings = [
+        _lay_out_site(s, *drawn[s.slug], protocol, out / "site-data", small_cells)
+        for s in scenario.sites
+    ]
+    return PreparedStudy(protocol, bundle_path, settings, [])
+
+
+_NOTES = (
+    "Image rehearsal on invented hospitals: every image is a procedurally drawn phantom "
+    "(smooth versus irregular, textured lesions) with simulated scanner shift; no result "
+    "here describes a real hospital or patient.",
+    "The development site is evaluated only on cases held out from CNN training.",
+)
+
+
+def _site_images(
+    spec: ImageSiteSpec, seed: int, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray]:
+    phantoms = phantom_set(spec.n_cases, seed=seed, prevalence=spec.prevalence)
+    shifted = np.stack([apply_shift(im, spec.shift, rng) for im in phantoms.images])
+    if spec.drift is not None:
+        first = int(spec.drift.starts_at * spec.n_cases)
+        for i in range(first, spec.n_cases):
+            shifted[i] = apply_shift(shifted[i], spec.drift.shift, rng)
+    return shifted, phantoms.labels
+
+
+def _train_cnn(
+    images: np.ndarray, labels: np.ndarray, spec: ImagePreprocessing, scenario: ImageScenario
+) -> torch.nn.Module:
+    """Mini-batch Adam on the development cases, every layer trained, one CPU thread."""
+    torch.manual_seed(scenario.seed)
+    model = build_cnn(CNN_CHANNELS)
+    x = preprocess(list(images), spec)
+    y = torch.from_numpy(labels.astype(np.float32))
+    order = np.random.default_rng(scenario.seed)
+    with single_thread():
+        optimizer = torch.optim.Adam(model.parameters(), lr=scenario.learning_rate)
+        model.train()
+        for _ in range(scenario.train_epochs):
+            for batch in np.array_split(order.permutation(len(y)), max(1, len(y) // 32)):
+                optimizer.zero_grad()
+                rows = torch.from_numpy(batch)
+                loss = torch.nn.functional.binary_cross_entropy_with_logits(model(x[rows]), y[rows])
+                loss.backward()  # type: ignore[no-untyped-call]
+                optimizer.step()
+    return model.eval()
+
+
+def _protocol(scenario: ImageScenario, sha256: str, adapt: bool) -> StudyProtocol:
+    return StudyProtocol(
+        study_id=f"image-rehearsal-{scenario.seed}",
+        title=f"Rehearsal of an image model across {len(scenario.sites)} invented hospitals",
+        model=ModelReference(name="phantom-cnn", architecture="cnn", sha256=sha256),
+        evaluation=EvaluationPlan(
+            thresholds=(0.5,), histogram_edges=uniform_edges(20), subgroups=(SUBGROUP,)
+        ),
+        quorum=2,
+        operations=(Operation.EVALUATE, Operation.FINE_TUNE) if adapt else (Operation.EVALUATE,),
+        adaptation=(
+            AdaptationPlan(
+                case_counts=(0, 25, 50), repeats=2, epochs=40, federated_rounds=4, local_epochs=10
+            )
+            if adapt
+            else None
+        ),
+    )
+
+
+def _lay_out_site(
+    spec: ImageSiteSpec,
+    images: np.ndarray,
+    labels: np.ndarray,
+    protocol: StudyProtocol,
+    directory: Path,
+    small_cells: SmallCellAction,
+) -> SiteSettings:
+    """Write the site's images, manifest, policy, approval and image configuration."""
+    home = directory / spec.slug
+    folder = home / "images"
+    folder.mkdir(parents=True, exist_ok=True)
+    start = date(2031, 1, 1)
+    rows = []
+    for i, (image, label) in enumerate(zip(images, labels, strict=True)):
+        name = f"case-{i:04d}"
+        relative = f"images/{name}.{'dcm' if spec.storage == 'dicom' else spec.storage}"
+        _write_image(home / relative, image, spec)
+        row = {
+            "case_id": name,
+            "patient_id": f"{spec.slug}-p{i // 2:04d}",
+            "label": int(label),
+            "acquired_on": (start + timedelta(days=int(i * 300 / len(labels)))).isoformat(),
+            "image": relative,
+        }
+        if spec.storage != "dicom":  # no header: the site records the vendor itself
+            row[SUBGROUP] = IMAGE_CONFIG.acquisition[0].category(spec.manufacturer)
+        rows.append(row)
+    pd.DataFrame(rows).to_csv(home / "manifest.csv", index=False)
+    policy = SitePolicy(
+        small_cells=small_cells,
+        allowed_subgroup_attributes=(SUBGROUP,),
+        allowed_operations=protocol.operations,
+        updates=UpdateRelease(allowed=Operation.FINE_TUNE in protocol.operations),
+    )
+    (home / "policy.json").write_text(policy.model_dump_json(indent=2))
+    approvals = home / policy.approvals_file
+    approvals.unlink(missing_ok=True)
+    approve(protocol, approvals)
+    (home / "images.json").write_text(IMAGE_CONFIG.model_dump_json(indent=2))
+    return SiteSettings(
+        site=spec.name,
+        data_path=home / "manifest.csv",
+        policy_path=home / "policy.json",
+        ledger_path=home / "ledger.jsonl",
+        image_config_path=home / "images.json",
+    )
+
+
+def _write_image(path: Path, image: np.ndarray, spec: ImageSiteSpec) -> None:
+    if spec.storage == "npy":
+        np.save(path, image.astype(np.float32))
+        return
+    if spec.storage == "png":
+        from PIL import Image
+
+        grey = (np.clip(image / 1.5, 0.0, 1.0) * 255).astype(np.uint8)
+        Image.fromarray(grey).save(path)
+        return
+    _write_dicom(path, (np.clip(image, 0.0, 4.0) * 1000).astype(np.uint16), spec.manufacturer)
+
+
+def _write_dicom(path: Path, pixels: np.ndarray, manufacturer: str) -> None:
+    """Write a minimal Secondary Capture image (PS3.3 A.8) with the invented maker."""
+    from pydicom.dataset import Dataset, FileMetaDataset
+    from pydicom.uid import ExplicitVRLittleEndian, SecondaryCaptureImageStorage, generate_uid
+
+    meta = FileMetaDataset()
+    meta.MediaStorageSOPClassUID = SecondaryCaptureImageStorage
+    meta.MediaStorageSOPInstanceUID = generate_uid()
+    meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    ds = Dataset()
+    ds.file_meta = meta
+    ds.SOPClassUID = SecondaryCaptureImageStorage
+    ds.SOPInstanceUID = meta.MediaStorageSOPInstanceUID
+    ds.Modality = "MR"
+    ds.Manufacturer = manufacturer
+    ds.PatientName = "Invented^Phantom"
+    ds.Rows, ds.Columns = pixels.shape
+    ds.SamplesPerPixel = 1
+    ds.PhotometricInterpretation = "MONOCHROME2"
+    ds.BitsAllocated, ds.BitsStored, ds.HighBit, ds.PixelRepresentation = 16, 16, 15, 0
+    ds.PixelData = pixels.tobytes()
+    ds.save_as(path, enforce_file_format=True)
+
+
+def _describe(spec: ImageSiteSpec) -> str:
+    changed = {
+        k: v for k, v in spec.shift.model_dump().items() if v != ImageShift.model_fields[k].default
+    }
+    shift = ", ".join(f"{k} {v}" for k, v in changed.items()) or "no scanner shift"
+    return f"{spec.n_cases} invented phantom cases stored as {spec.storage}; {shift}"
