@@ -18,6 +18,7 @@ import typer
 from rich.console import Console
 
 from coordinator.cli import add_meta_command
+from coordinator.deployment.cli import coordinator_app
 from simulations.monitor_cli import add_monitor_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
@@ -34,6 +35,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 app.add_typer(site_app)
+app.add_typer(coordinator_app)
 add_meta_command(app)
 add_monitor_command(app)
 
