@@ -336,6 +336,7 @@ def test_the_coordinator_killed_mid_study_resumes_with_identical_results(
     """Kill the hub and the run mid-study; restart: same results, one release per round per site."""
     reference_protocol = _protocol("resumed-nodule-2031-a", rounds=2)
     protocol = _protocol("resumed-nodule-2031-b", rounds=2)
+    consortium.approve_everywhere(reference_protocol)
     inprocess = run_study(
         reference_protocol,
         None,
