@@ -36,6 +36,7 @@ from site_agent.contract.protocol import EvaluationPlan, StudyProtocol, uniform_
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy
+from site_agent.exceptions import DeploymentError
 from site_agent.flower_processes import flower_environment, free_port
 from site_agent.keys import make_site_keys
 from site_agent.service import SiteSettings
@@ -126,7 +127,9 @@ class Consortium:
         return self.root / "sites" / name / "connection"
 
     def start_hub(self) -> None:
-        with (self.root / "hub-command.log").open("ab") as log:
+        log_path = self.root / "hub-command.log"
+        seen = log_path.stat().st_size if log_path.exists() else 0  # only this start's lines
+        with log_path.open("ab") as log:
             self.processes["hub"] = subprocess.Popen(
                 [
                     SITEPOOL,
@@ -149,7 +152,7 @@ class Consortium:
                 start_new_session=True,
             )
         deadline = time.monotonic() + WAIT_S
-        while b"hub listening" not in (self.root / "hub-command.log").read_bytes():
+        while b"hub listening" not in log_path.read_bytes()[seen:]:
             assert self.processes["hub"].poll() is None, "the hub command exited"
             assert time.monotonic() < deadline, "the hub did not start"
             time.sleep(0.3)
@@ -194,7 +197,11 @@ class Consortium:
     def wait_online(self, names: tuple[str, ...]) -> None:
         deadline = time.monotonic() + WAIT_S
         while True:
-            online = {site.name for site, status in list_sites(self.hub) if status == "online"}
+            try:
+                rows = list_sites(self.hub)
+            except DeploymentError:  # the hub's control interface may still be starting
+                rows = []
+            online = {site.name for site, status in rows if status == "online"}
             if set(names) <= online:
                 return
             assert time.monotonic() < deadline, f"sites not online: {set(names) - online}"
