@@ -337,6 +337,14 @@ def test_an_unadmitted_key_is_refused_in_one_line(consortium: Consortium, tmp_pa
     assert body[:40] not in stdout + stderr
 
 
+@pytest.mark.xfail(
+    strict=True,
+    reason=(
+        "a reply in flight when the coordinator dies was ledgered at the site but never "
+        "stored: the site is asked again and ledgers a second release until the site "
+        "answers a repeated (protocol hash, round) with its ledgered release (task 11b)"
+    ),
+)
 def test_the_coordinator_killed_mid_study_resumes_with_identical_results(
     consortium: Consortium, tmp_path: Path
 ) -> None:
