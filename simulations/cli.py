@@ -18,6 +18,7 @@ import typer
 from rich.console import Console
 
 from coordinator.cli import add_meta_command
+from coordinator.deployment.cli import coordinator_app
 from coordinator.monitoring.cli import add_monitor_command
 from simulations.drift_cli import add_rehearse_drift_command
 from simulations.planning_cli import add_plan_command
@@ -39,6 +40,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 app.add_typer(site_app)
+app.add_typer(coordinator_app)
 add_meta_command(app)
 add_monitor_command(app)
 add_rehearse_drift_command(app)

@@ -11,6 +11,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
+from site_agent.connect_cli import add_connection_commands
 from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
 from site_agent.contract.release import (
     UNREGISTERED_PROTOCOL,
@@ -35,6 +36,7 @@ site_app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
 )
+add_connection_commands(site_app)
 
 
 @site_app.command(

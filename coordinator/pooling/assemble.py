@@ -136,6 +136,13 @@ def _outcomes(outcome: RoundOutcome, info: Mapping[str, SiteInfo]) -> list[SiteO
         for d in outcome.declines
     ]
     answered = {*outcome.releases, *(d.site for d in outcome.declines)}
+    # A deployment names the site of a fault where it knows it: that reason is the site's own.
+    named = {f.site: f.reason for f in outcome.faults if f.site and f.site not in answered}
+    rows += [
+        SiteOutcome(site=name, status="silent", reason=why, **_described(info.get(name)))
+        for name, why in sorted(named.items())
+    ]
+    answered |= set(named)
     silent = sorted(set(info) - answered)
     # Faults are known by node, not by site: a silent site gets the round's faults as context.
     faults = "; ".join(f"node {f.node_id}: {f.reason}" for f in outcome.faults)

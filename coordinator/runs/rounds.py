@@ -17,8 +17,9 @@ names a site another node already answered for is a fault, not a second release.
 
 from __future__ import annotations
 
+import time
 import uuid
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 
 from flwr.app import Message
 from flwr.serverapp import Grid
@@ -42,6 +43,8 @@ from site_agent.exceptions import DeploymentError, ProtocolError
 
 MAX_FAULT_REASON_CHARS = 200
 """Longest reason kept for a node fault (Flower's error text is cut to this)."""
+REPLY_POLL_S = 0.3
+"""Pause between two pulls of a round's replies in :func:`exchange`."""
 
 
 class _Record(BaseModel):
@@ -60,11 +63,14 @@ class SiteDecline(_Record):
 class NodeFault(_Record):
     """A node whose answer never arrived or could not be used."""
 
-    node_id: int
+    node_id: int = Field(description="Flower node id; 0 for a site that was not connected.")
     code: int | None = Field(
         default=None, description="Flower error code; None for a timeout or a bad reply."
     )
     reason: str
+    site: str | None = Field(
+        default=None, description="The site's registered name, where the deployment knows it."
+    )
 
 
 class SiteDisclosure(_Record):
@@ -114,10 +120,13 @@ def ask_sites(
     node_ids: Sequence[int],
     *,
     window: TimeWindow | None = None,
+    on_reply: Callable[[Message], None] | None = None,
 ) -> RoundOutcome:
     """Send one request per node, wait for the replies, and sort them by outcome.
 
     No quorum is checked here: evaluation rounds require one, monitoring rounds do not.
+    ``on_reply``, if given, sees each reply as soon as it arrives (a resumable study
+    stores each release then, so a coordinator killed mid-round keeps what came in).
     """
     protocol_hash = protocol.content_hash()
     requests: dict[int, SiteRequest] = {}
@@ -140,7 +149,10 @@ def ask_sites(
                 group_id=str(round_number),
             )
         )
-    replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
+    if on_reply is None:
+        replies = list(grid.send_and_receive(messages, timeout=protocol.reply_timeout_s))
+    else:
+        replies = exchange(grid, messages, protocol.reply_timeout_s, on_reply)
     return _sorted_replies(replies, requests, protocol_hash, round_number)
 
 
@@ -174,6 +186,31 @@ def run_study_rounds(grid: Grid, protocol: StudyProtocol, bundle: bytes | None) 
     return StudyOutcome(
         study_id=protocol.study_id, protocol_hash=protocol.content_hash(), rounds=rounds
     )
+
+
+def exchange(
+    grid: Grid,
+    messages: Sequence[Message],
+    timeout_s: float,
+    on_reply: Callable[[Message], None],
+) -> list[Message]:
+    """Push ``messages``, then pull replies until all came back or ``timeout_s`` passed.
+
+    Like ``Grid.send_and_receive``, but each reply is handed to ``on_reply`` as it
+    arrives, and replies are pulled every :data:`REPLY_POLL_S` seconds.
+    """
+    pending = {message_id for message_id in grid.push_messages(messages) if message_id}
+    replies: list[Message] = []
+    deadline = time.monotonic() + timeout_s
+    while pending:
+        for reply in grid.pull_messages(list(pending)):
+            pending.discard(reply.metadata.reply_to_message_id)
+            replies.append(reply)
+            on_reply(reply)
+        if not pending or time.monotonic() >= deadline:
+            break
+        time.sleep(REPLY_POLL_S)
+    return replies
 
 
 def _sorted_replies(

@@ -21,6 +21,7 @@ from coordinator.adaptation.fine_tuning import run_fine_tuning
 from coordinator.monitoring.results_store import SqliteResultsStore
 from coordinator.monitoring.rounds import MonitoringOutcome, run_monitoring_rounds
 from coordinator.runs.rounds import StudyOutcome, run_study_rounds
+from coordinator.runs.study_state import SqliteStudyState, run_resumable_study_rounds
 from site_agent.contract.protocol import Operation, StudyProtocol
 from site_agent.exceptions import DeploymentError, InputError
 
@@ -31,9 +32,13 @@ EXPECTED_SITES_KEY = "expected-sites"
 NODE_WAIT_KEY = "node-wait-s"
 STORE_PATH_KEY = "store-path"
 AS_OF_KEY = "as-of"
+STATE_PATH_KEY = "study-state-path"
+SITE_NAMES_KEY = "expected-site-names"
 """Keys of the run config this app reads; a store path switches the app to monitoring
 (:func:`~coordinator.monitoring.rounds.run_monitoring_rounds`, one round per time window), and
-``as-of`` (an ISO date) is the day a monitoring run takes as today."""
+``as-of`` (an ISO date) is the day a monitoring run takes as today. A study-state path
+makes a study run resumable (:mod:`coordinator.runs.study_state`); the expected site names
+(comma-separated) are those a deployment admitted, so that absent ones are named."""
 
 DEFAULT_NODE_WAIT_S = 60.0
 _NODE_POLL_S = 0.5
@@ -55,6 +60,12 @@ class StudyRunConfig(BaseModel):
     as_of: date | None = Field(
         default=None, description="Monitoring only: the day taken as today; None: today."
     )
+    state_path: Path | None = Field(
+        default=None, description="Study state of a resumable study run; None: not resumable."
+    )
+    site_names: tuple[str, ...] = Field(
+        default=(), description="Sites a deployment admitted (named in the report if absent)."
+    )
 
     @classmethod
     def from_run_config(cls, run_config: dict[str, bool | int | float | str]) -> StudyRunConfig:
@@ -73,12 +84,15 @@ class StudyRunConfig(BaseModel):
             "node_wait_s": NODE_WAIT_KEY,
             "store_path": STORE_PATH_KEY,
             "as_of": AS_OF_KEY,
+            "state_path": STATE_PATH_KEY,
         }
-        values = {
+        values: dict[str, object] = {
             field: run_config[key]
             for field, key in keys.items()
             if key in run_config and run_config[key] != ""
         }
+        names = str(run_config.get(SITE_NAMES_KEY, ""))
+        values["site_names"] = tuple(name for name in names.split(",") if name)
         try:
             return cls.model_validate(values)
         except ValidationError as exc:
@@ -98,6 +112,10 @@ class StudyRunConfig(BaseModel):
             config[STORE_PATH_KEY] = str(self.store_path)
         if self.as_of is not None:
             config[AS_OF_KEY] = self.as_of.isoformat()
+        if self.state_path is not None:
+            config[STATE_PATH_KEY] = str(self.state_path)
+        if self.site_names:
+            config[SITE_NAMES_KEY] = ",".join(self.site_names)
         return config
 
 
@@ -155,7 +173,13 @@ def run_configured_study(grid: Grid, config: StudyRunConfig) -> StudyOutcome:
     protocol = StudyProtocol.load(config.protocol_path)
     bundle = None if config.bundle_path is None else _read_bundle(config.bundle_path)
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
-    outcome = run_study_rounds(grid, protocol, bundle)
+    if config.state_path is None:
+        outcome = run_study_rounds(grid, protocol, bundle)
+    else:
+        with SqliteStudyState(config.state_path) as state:
+            outcome = run_resumable_study_rounds(
+                grid, protocol, bundle, state, expected_sites=config.site_names
+            )
     if Operation.FINE_TUNE in protocol.operations and bundle is not None:
         fine_tuning = run_fine_tuning(grid, protocol, bundle)
         outcome = outcome.model_copy(update={"fine_tuning": fine_tuning})

@@ -1,0 +1,149 @@
+"""Resumable study rounds: stored releases are reused, sites are never asked twice.
+
+Runs the real ServerApp-side rounds against the real site ClientApp on the in-process
+engine. Flower's SuperLink tells the coordinator each authenticated node's admitted name;
+:class:`_NamedGrid` gives the in-process nodes their site names the same way.
+References: each site's release is checked against the direct computation without Flower
+(the ``expected_release`` fixture: ``evaluate_site`` then the site's policy), and the
+number of answers against each site's own release ledger.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Sequence
+from pathlib import Path
+
+import pytest
+from flwr.app import Context, Message, RecordDict
+from flwr.proto.node_pb2 import NodeInfo
+from flwr.serverapp import Grid, ServerApp
+from flwr.supercore.run import Run
+
+from coordinator.runs.inprocess import FIRST_NODE_ID, run_inprocess
+from coordinator.runs.rounds import SiteDisclosure, StudyOutcome
+from coordinator.runs.study_state import SqliteStudyState, run_resumable_study_rounds
+from site_agent import client_app
+from site_agent.contract.protocol import StudyProtocol
+from site_agent.contract.release import SiteRelease
+from site_agent.disclosure.ledger import ReleaseLedger
+from site_agent.exceptions import DeploymentError
+from site_agent.service import SiteSettings
+
+
+class _NamedGrid(Grid):
+    """Delegate to an in-process grid; name each node as SuperNode authentication does."""
+
+    def __init__(self, inner: Grid, names: dict[int, str]) -> None:
+        self._inner = inner
+        self._names = names
+
+    def set_run(self, run: Run) -> None:
+        self._inner.set_run(run)
+
+    @property
+    def run(self) -> Run:
+        return self._inner.run
+
+    def create_message(
+        self,
+        content: RecordDict,
+        message_type: str,
+        dst_node_id: int,
+        group_id: str,
+        ttl: float | None = None,
+    ) -> Message:
+        return self._inner.create_message(content, message_type, dst_node_id, group_id, ttl)
+
+    def get_node_ids(self) -> Iterable[int]:
+        return self._inner.get_node_ids()
+
+    def get_nodes(self) -> Iterable[NodeInfo]:
+        return [NodeInfo(node_id=n, name=self._names[n]) for n in self._inner.get_node_ids()]
+
+    def push_messages(self, messages: Iterable[Message]) -> Iterable[str]:
+        return self._inner.push_messages(messages)
+
+    def pull_messages(self, message_ids: Iterable[str]) -> Iterable[Message]:
+        return self._inner.pull_messages(message_ids)
+
+    def send_and_receive(
+        self, messages: Iterable[Message], *, timeout: float | None = None
+    ) -> Iterable[Message]:
+        return self._inner.send_and_receive(messages, timeout=timeout)
+
+
+def _resumable(
+    protocol: StudyProtocol,
+    sites: Sequence[SiteSettings],
+    state_path: Path,
+    expected: Sequence[str] = (),
+) -> StudyOutcome:
+    server = ServerApp()
+    result: list[StudyOutcome] = []
+    names = {FIRST_NODE_ID + i: site.site for i, site in enumerate(sites)}
+
+    @server.main()
+    def main(grid: Grid, context: Context) -> None:
+        with SqliteStudyState(state_path) as state:
+            result.append(
+                run_resumable_study_rounds(
+                    _NamedGrid(grid, names), protocol, None, state, expected_sites=expected
+                )
+            )
+
+    run_inprocess(server, client_app.app, [s.to_node_config() for s in sites], {})
+    return result[0]
+
+
+def _answers(site: SiteSettings, protocol: StudyProtocol) -> int:
+    assert site.ledger_path is not None
+    if not site.ledger_path.exists():
+        return 0
+    return sum(
+        entry.protocol_hash == protocol.content_hash()
+        for entry in ReleaseLedger(site.ledger_path).entries()
+    )
+
+
+def test_a_site_whose_release_is_stored_is_not_asked_again(
+    tmp_path: Path,
+    study_protocol: StudyProtocol,
+    three_sites: list[SiteSettings],
+    expected_release: Callable[[SiteSettings, StudyProtocol], SiteRelease],
+) -> None:
+    """A release stored before a crash is reused; only the other sites are asked."""
+    first = three_sites[0]
+    stored = expected_release(first, study_protocol)
+    with SqliteStudyState(tmp_path / "state.sqlite") as state:
+        state.put_release(study_protocol.content_hash(), 1, stored, FIRST_NODE_ID, SiteDisclosure())
+
+    outcome = _resumable(study_protocol, three_sites, tmp_path / "state.sqlite")
+
+    (round_one,) = outcome.rounds
+    assert sorted(round_one.releases) == sorted(site.site for site in three_sites)
+    for site in three_sites:
+        assert round_one.releases[site.site] == expected_release(site, study_protocol)
+    assert [_answers(site, study_protocol) for site in three_sites] == [0, 1, 1]
+
+
+def test_a_finished_round_is_read_back_and_no_site_is_charged_twice(
+    tmp_path: Path, study_protocol: StudyProtocol, three_sites: list[SiteSettings]
+) -> None:
+    """Running a finished study again returns the same outcome and asks nobody."""
+    first = _resumable(study_protocol, three_sites, tmp_path / "state.sqlite")
+    again = _resumable(study_protocol, three_sites, tmp_path / "state.sqlite")
+
+    assert again.model_dump_json() == first.model_dump_json()
+    assert [_answers(site, study_protocol) for site in three_sites] == [1, 1, 1]
+
+
+def test_quorum_failure_names_each_missing_site_and_why(
+    tmp_path: Path, study_protocol: StudyProtocol, three_sites: list[SiteSettings]
+) -> None:
+    """An admitted site that never connected is named, and a failed quorum says so."""
+    strict = study_protocol.model_copy(update={"quorum": 4})
+
+    with pytest.raises(DeploymentError, match="Kestrel Valley: not connected") as failure:
+        _resumable(strict, three_sites, tmp_path / "state.sqlite", expected=["Kestrel Valley"])
+
+    assert "quorum is 4" in str(failure.value)
