@@ -1,13 +1,13 @@
 """The coordinator: runs a study protocol over Flower and turns releases into results.
 
-Public names are imported on first use (PEP 562), so that importing one module does
-not pay for the rest: torch, Flower and OpenDP load only where they are needed.
+Public names are imported on first use (:mod:`site_agent.lazy_surface`).
 """
 
 from __future__ import annotations
 
-import importlib
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
+
+from site_agent.lazy_surface import lazy_surface
 
 _EXPORTS: dict[str, str] = {
     "DriftAlert": "coordinator.monitoring.alerts",
@@ -63,19 +63,7 @@ __all__ = [
     "write_exports",
 ]
 
-
-def __getattr__(name: str) -> Any:
-    """Import a public name from the module that defines it, on first use."""
-    module = _EXPORTS.get(name)
-    if module is None:
-        raise AttributeError(f"module 'coordinator' has no attribute {name!r}")
-    value = getattr(importlib.import_module(module), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted([*globals(), *__all__])
+__getattr__, __dir__ = lazy_surface(__name__, _EXPORTS)
 
 
 if TYPE_CHECKING:

@@ -12,11 +12,8 @@ from typing import Annotated
 
 import typer
 
-from site_agent.connection import SiteConnection, connect_site
 from site_agent.exceptions import SitepoolError
-from site_agent.keys import make_site_keys
 from site_agent.notices import RESEARCH_NOTICE
-from site_agent.service import SiteSettings
 
 EXIT_ERROR = 2
 
@@ -30,6 +27,8 @@ def keys_command(
     out: Annotated[Path, typer.Option("--out", help="Directory for site.key and site.key.pub.")],
 ) -> None:
     """Make the site's key pair; give only site.key.pub to the coordinator."""
+    from site_agent.keys import make_site_keys
+
     try:
         files = make_site_keys(out)
     except SitepoolError as exc:
@@ -53,14 +52,22 @@ def connect_command(
         Path | None, typer.Option("--policy", help="Disclosure policy (JSON).")
     ] = None,
     ledger: Annotated[Path | None, typer.Option("--ledger", help="Release ledger (JSONL).")] = None,
+    image_config: Annotated[
+        Path | None,
+        typer.Option("--image-config", help="The site's image configuration (JSON or TOML)."),
+    ] = None,
 ) -> None:
     """Connect out to the hub and answer its requests until Ctrl-C."""
+    from site_agent.connection import SiteConnection, connect_site
+    from site_agent.service import SiteSettings
+
     try:
         settings = SiteSettings(
             site=site,
             data_path=data.resolve(),
             policy_path=None if policy is None else policy.resolve(),
             ledger_path=None if ledger is None else ledger.resolve(),
+            image_config_path=None if image_config is None else image_config.resolve(),
         )
     except ValueError as exc:
         typer.echo(f"error: invalid site settings: {exc.__class__.__name__}", err=True)
@@ -78,15 +85,19 @@ def connect_command(
     except SitepoolError as exc:
         _fail(exc)
     typer.echo(f"{site}: disconnected")
+    typer.echo(RESEARCH_NOTICE)
 
 
 def add_connection_commands(app: typer.Typer) -> None:
     """Register ``keys`` and ``connect`` on the site command group."""
-    app.command("keys", help="Make this site's key pair (ECDSA P-384).")(keys_command)
+    app.command("keys", help="Make this site's key pair (ECDSA P-384).", epilog=RESEARCH_NOTICE)(
+        keys_command
+    )
     app.command(
         "connect",
         help=(
             "Connect to a coordinator's hub (outbound only, TLS, site key) and answer "
             "its study requests with this site's data until Ctrl-C."
         ),
+        epilog=RESEARCH_NOTICE,
     )(connect_command)

@@ -29,14 +29,13 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
+from coordinator.deployment.defaults import DEFAULT_VALID_DAYS
 from site_agent.exceptions import DeploymentError, InputError
 
 CA_CERT_FILE = "ca.pem"
 CA_KEY_FILE = "ca.key"
 SERVER_CERT_FILE = "server.pem"
 SERVER_KEY_FILE = "server.key"
-DEFAULT_VALID_DAYS = 30
-"""Validity of a throwaway certificate: long enough to try a study, short enough to lapse."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -15,20 +15,11 @@ from typing import Annotated
 
 import typer
 
-from coordinator.deployment.certificates import DEFAULT_VALID_DAYS, make_certificates
-from coordinator.deployment.hub import (
-    DEFAULT_PORT,
-    HubSettings,
-    HubState,
-    admit_site,
-    list_sites,
-    remove_site,
-    serve_hub,
-)
-from coordinator.deployment.study import (
+from coordinator.deployment.defaults import (
     DEFAULT_NODE_WAIT_S,
+    DEFAULT_PORT,
     DEFAULT_STUDY_TIMEOUT_S,
-    run_deployed_study,
+    DEFAULT_VALID_DAYS,
 )
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
@@ -68,6 +59,8 @@ def certs_command(
     days: Annotated[int, typer.Option("--days", help="Days of validity.")] = DEFAULT_VALID_DAYS,
 ) -> None:
     """Write ca.pem, ca.key, server.pem and server.key."""
+    from coordinator.deployment.certificates import make_certificates
+
     try:
         files = make_certificates(out, names=tuple(name or ()), valid_days=days)
     except SitepoolError as exc:
@@ -93,6 +86,8 @@ def start_command(
     port: Annotated[int, typer.Option("--port", help="The one port sites dial.")] = DEFAULT_PORT,
 ) -> None:
     """Serve the hub until stopped."""
+    from coordinator.deployment.hub import HubSettings, HubState, serve_hub
+
     settings = HubSettings(
         host=host,
         port=port,
@@ -120,6 +115,8 @@ def admit_command(
     key: Annotated[Path, typer.Option("--key", help="The site's public key (site.key.pub).")],
 ) -> None:
     """Register a site's key with the running hub."""
+    from coordinator.deployment.hub import HubState, admit_site
+
     try:
         admitted = admit_site(HubState(state), site, key)
     except SitepoolError as exc:
@@ -130,6 +127,8 @@ def admit_command(
 @coordinator_app.command("sites", help="List admitted sites and whether they are connected.")
 def sites_command(state: Annotated[Path, _STATE]) -> None:
     """Print one line per admitted site."""
+    from coordinator.deployment.hub import HubState, list_sites
+
     try:
         rows = list_sites(HubState(state))
     except SitepoolError as exc:
@@ -147,6 +146,8 @@ def remove_command(
     site: Annotated[str, typer.Option("--site", help="Name of the admitted site.")],
 ) -> None:
     """Unregister a site's key."""
+    from coordinator.deployment.hub import HubState, remove_site
+
     try:
         removed = remove_site(HubState(state), site)
     except SitepoolError as exc:
@@ -177,6 +178,9 @@ def run_command(
     ] = DEFAULT_STUDY_TIMEOUT_S,
 ) -> None:
     """Run the study and say where its report is."""
+    from coordinator.deployment.hub import HubState
+    from coordinator.deployment.study import run_deployed_study
+
     started = time.perf_counter()
 
     def progress(line: str) -> None:

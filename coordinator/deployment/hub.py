@@ -31,6 +31,7 @@ from typing import Any
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from coordinator.deployment.certificates import check_server_files
+from coordinator.deployment.defaults import DEFAULT_PORT
 from coordinator.runs.loopback import flwr_command, toml_string
 from site_agent.exceptions import DeploymentError, InputError
 from site_agent.flower_processes import (
@@ -43,7 +44,6 @@ from site_agent.flower_processes import (
 from site_agent.keys import fingerprint, read_public_key
 
 CONNECTION = "sitepool-hub"
-DEFAULT_PORT = 9092
 HUB_FILE = "hub.json"
 SITES_FILE = "sites.json"
 STUDY_STATE_FILE = "study-state.sqlite"

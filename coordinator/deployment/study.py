@@ -18,6 +18,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from coordinator.deployment.defaults import DEFAULT_NODE_WAIT_S, DEFAULT_STUDY_TIMEOUT_S
 from coordinator.deployment.hub import CONNECTION, HubState
 from coordinator.pooling.assemble import build_results
 from coordinator.pooling.sites import SiteInfo
@@ -33,8 +34,6 @@ from site_agent.exceptions import InputError
 ENGINE = "deployment"
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"
-DEFAULT_STUDY_TIMEOUT_S = 1800.0
-DEFAULT_NODE_WAIT_S = 60.0
 _ACTIVE_RUN_FILE = "active-run.json"
 _DEPLOYMENT_NOTE = (
     "Run on connected hospital sites: each site computed its statistics on its own "
