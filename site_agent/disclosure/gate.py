@@ -75,9 +75,15 @@ from site_agent.contract.wire import (
     encode_reply,
 )
 from site_agent.disclosure.approvals import ApprovalStatus, approval_status
-from site_agent.disclosure.ledger import LedgerSession, Outcome, ReleaseLedger
+from site_agent.disclosure.ledger import LedgerEntry, LedgerSession, Outcome, ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
 from site_agent.disclosure.privacy_budget import check_budget, noised_release
+from site_agent.disclosure.repeat_answer import (
+    find_earlier_answer,
+    ledger_repeat,
+    repeated_reply,
+    request_key,
+)
 from site_agent.exceptions import DisclosureRefused
 from site_agent.service import LEDGER_PATH_KEY, POLICY_PATH_KEY, SITE_NAME_KEY, UNNAMED_SITE
 from site_agent.statistics.summaries import (
@@ -637,6 +643,9 @@ def disclosure_mod(
             request, policy, coordinator=None if coordinator is None else str(coordinator)
         )
         study_id = protocol.study_id
+        earlier = find_earlier_answer(ledger, request)
+        if earlier is not None:  # asked again: the same answer, charged once (repeat_answer)
+            return _repeated(msg, earlier, ledger, request, study_id)
         reply = call_next(msg, context)
         if reply.has_error():
             raise _refuse(RefusalCode.SITE_ERROR)
@@ -709,6 +718,7 @@ def _released(
             operation=operation,
             released=released,
             epsilon_spent=epsilon or 0.0,
+            request_key=request_key(request),
         )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
@@ -765,12 +775,31 @@ def _released_adaptation(
             operation=request.operation.value,
             released=released,
             epsilon_spent=epsilon,
+            request_key=request_key(request),
         )
     if update is not None:
         content[LOCAL_UPDATE_RECORD] = update
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )
+    return Message(content, reply_to=msg)
+
+
+def _repeated(
+    msg: Message,
+    earlier: LedgerEntry,
+    ledger: ReleaseLedger,
+    request: SiteRequest,
+    study_id: str,
+) -> Message:
+    """Send the ledgered answer ``earlier`` again with its own receipt; ledger the repeat."""
+    content = encode_reply(repeated_reply(earlier, request))
+    ledger_repeat(ledger, earlier, request, study_id)
+    record = ConfigRecord({_SEQUENCE_KEY: earlier.sequence, _HASH_KEY: earlier.entry_hash})
+    released = earlier.released
+    if isinstance(released, dict) and "disclosure" in released:
+        record[_NOTE_KEY] = json.dumps(released["disclosure"])
+    content[DISCLOSURE_RECORD] = record
     return Message(content, reply_to=msg)
 
 
@@ -802,6 +831,7 @@ def _declined(
                 reason=code.value,
                 released=json.loads(reply.model_dump_json()),
                 epsilon_spent=epsilon_spent,
+                request_key=request_key(request) if request is not None else None,
             )
             content[DISCLOSURE_RECORD] = ConfigRecord(
                 {_SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
