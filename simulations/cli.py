@@ -18,6 +18,7 @@ import typer
 from rich.console import Console
 
 from coordinator.cli import add_meta_command
+from coordinator.pool_files_cli import add_pool_files_command
 from simulations.monitor_cli import add_monitor_command
 from site_agent.cli import site_app
 from site_agent.exceptions import SitepoolError
@@ -36,6 +37,7 @@ app = typer.Typer(
 app.add_typer(site_app)
 add_meta_command(app)
 add_monitor_command(app)
+add_pool_files_command(app)
 
 
 @app.command(

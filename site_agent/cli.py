@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
+from pydantic import ValidationError
 from rich.console import Console
 from rich.table import Table
 
@@ -23,7 +24,7 @@ from site_agent.disclosure.gate import apply_policy
 from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
 from site_agent.evaluation import evaluate_site
-from site_agent.exceptions import SitepoolError
+from site_agent.exceptions import InputError, SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
 from site_agent.statistics.metrics import MetricsSummary, summarize
 
@@ -291,3 +292,71 @@ def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDG
         typer.echo(f"ledger check FAILED: {result.problem}", err=True)
         raise typer.Exit(code=1)
     typer.echo(f"ledger intact: {result.entries} entries, hash chain unbroken")
+
+
+@site_app.command(
+    "answer-into-file",
+    help=(
+        "For a site that cannot connect: answer one round of a study protocol through the "
+        "site's disclosure gate (approval, policy, privacy budget, ledger, exactly as a "
+        "connected answer) and write the reply, signed with the site's key, to a file the "
+        f"coordinator can pool. {RESEARCH_NOTICE}"
+    ),
+)
+def answer_into_file_command(
+    protocol: Annotated[Path, typer.Argument(help="Study protocol JSON the site approved.")],
+    site: Annotated[str, typer.Option("--site", help="This site's name, as admitted.")],
+    data: Annotated[Path, typer.Option("--data", help="The site's predictions table.")],
+    policy: Annotated[Path, typer.Option("--policy", help="The site's disclosure policy.")],
+    ledger: Annotated[Path, _LEDGER_OPTION],
+    key: Annotated[Path, typer.Option("--key", help="The site's OpenSSH ECDSA P-384 private key.")],
+    out: Annotated[
+        Path,
+        typer.Option("--out", help="File to write; its name must end in .signed-release.json."),
+    ],
+    round_number: Annotated[int, typer.Option("--round", min=1, help="Round answered.")] = 1,
+    bundle: Annotated[
+        Path | None,
+        typer.Option("--bundle", help="Model bundle, when the table has no score column."),
+    ] = None,
+    coordinator: Annotated[
+        str | None,
+        typer.Option("--coordinator", help="Coordinator name, if the policy names allowed ones."),
+    ] = None,
+) -> None:
+    """Answer a protocol into a signed release file."""
+    from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
+    from site_agent.offline_answer import answer_into_file
+    from site_agent.service import SiteSettings
+
+    try:
+        if not out.name.endswith(SIGNED_RELEASE_SUFFIX):
+            raise InputError(f"--out must end in {SIGNED_RELEASE_SUFFIX}")
+        settings = SiteSettings(site=site, data_path=data, policy_path=policy, ledger_path=ledger)
+        signed = answer_into_file(
+            StudyProtocol.load(protocol),
+            settings,
+            key,
+            round_number=round_number,
+            bundle=None if bundle is None else bundle.read_bytes(),
+            coordinator=coordinator,
+        )
+    except (SitepoolError, ValidationError, OSError) as exc:
+        typer.echo(f"error: {_one_line(exc)}", err=True)
+        raise typer.Exit(code=2) from exc
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(signed.to_json())
+    reply = signed.reply
+    typer.echo(f"{reply.status.value}: {reply.reason or 'statistics released'}")
+    typer.echo(f"ledger entry {signed.ledger_sequence}, signed by {signed.key_fingerprint}")
+    typer.echo(f"wrote {out}")
+    typer.echo(RESEARCH_NOTICE)
+
+
+def _one_line(exc: BaseException) -> str:
+    if isinstance(exc, ValidationError):
+        first = exc.errors()[0]
+        return f"invalid {'.'.join(str(p) for p in first['loc'])}: {first['msg']}"
+    if isinstance(exc, OSError):
+        return f"cannot read {exc.filename}: {exc.strerror}"
+    return str(exc)
