@@ -15,7 +15,7 @@ from typing import Annotated
 import typer
 
 from coordinator.pooling.assemble import build_results
-from coordinator.pooling.release_files import file_round, read_release_folder
+from coordinator.pooling.release_files import file_round, file_sites, read_release_folder
 from coordinator.report.exports import write_exports
 from coordinator.report.study_report import render_report
 from site_agent.contract.protocol import StudyProtocol
@@ -51,7 +51,7 @@ def pool_files_command(
         for refused in files.refused:
             typer.echo(refused.line(), err=True)
         outcome = file_round(study, files, round_number)
-        results = build_results(study, outcome, engine=ENGINE)
+        results = build_results(study, outcome, engine=ENGINE, sites=file_sites(files))
         out.mkdir(parents=True, exist_ok=True)
         results.write_json(out / RESULTS_FILE)
         exports = write_exports(results, out)

@@ -18,6 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+from coordinator.pooling.assemble import SiteInfo
 from coordinator.runs.rounds import (
     MAX_FAULT_REASON_CHARS,
     NodeFault,
@@ -168,6 +169,16 @@ def file_round(protocol: StudyProtocol, files: FileReleases, round_number: int =
             f"quorum is {protocol.quorum}"
         )
     return outcome
+
+
+def file_sites(files: FileReleases) -> dict[str, SiteInfo]:
+    """Return every site named by a file, accepted or refused, as invited external sites.
+
+    Passed to :func:`~coordinator.pooling.assemble.build_results`, a site whose file was
+    refused is listed as a site without a usable reply, with the refusal among the reasons.
+    """
+    names = {e.site for e in files.accepted} | {r.site for r in files.refused if r.site}
+    return {name: SiteInfo() for name in sorted(names)}
 
 
 def _fault(reason: str) -> NodeFault:

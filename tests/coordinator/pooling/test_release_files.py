@@ -26,6 +26,7 @@ from coordinator.pooling.assemble import build_results
 from coordinator.pooling.release_files import (
     FILE_NODE_ID,
     file_round,
+    file_sites,
     read_release_folder,
     with_file_releases,
 )
@@ -214,6 +215,10 @@ def test_unadmitted_site_and_other_protocol_are_refused_and_reported(
     outcome = with_file_releases(empty, files)
     assert sorted(f.reason for f in outcome.faults) == reasons  # the report's missing sites
     assert list(outcome.releases) == [first.site]
+    listed = build_results(study_protocol, outcome, engine="files", sites=file_sites(files)).sites
+    silent = {row.site: row.reason or "" for row in listed if row.status == "silent"}
+    assert set(silent) == {second.site, third.site}
+    assert "answers another protocol" in silent[third.site]
 
 
 def test_file_answer_is_ledgered_and_a_second_answer_is_not_charged(
