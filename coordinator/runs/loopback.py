@@ -84,6 +84,7 @@ def run_loopback(
         # SuperNodes retry until the SuperLink answers: start them now, not after it listens.
         for index, site in enumerate(sites):
             node_config = layout.node_config(index, site.to_node_config())
+            runtime_port = free_port()
             processes.start(
                 f"supernode-{index}",
                 [
@@ -94,11 +95,19 @@ def run_loopback(
                     "--host",
                     LOOPBACK,
                     "--port",
-                    str(free_port()),
+                    str(runtime_port),
                     "--node-config",
                     str(node_config),
+                    # The site's own task runner takes the tasks (no app bundle is installed).
+                    "--isolation",
+                    "process",
                 ],
                 layout.log(f"supernode-{index}"),
+            )
+            processes.start(
+                f"site-runner-{index}",
+                site_runner_command(f"{LOOPBACK}:{runtime_port}"),
+                layout.log(f"site-runner-{index}"),
             )
         _wait_for_port(link_port, SUPERLINK_START_TIMEOUT_S, processes)
         say(f"SuperLink listening on {LOOPBACK}:{link_port}; {len(sites)} SuperNodes started")
@@ -108,6 +117,17 @@ def run_loopback(
         say(f"run {run_id} submitted")
         _wait_for_results(config.results_path, run_id, env, processes, timeout_s, say)
         say(f"run {run_id} finished")
+
+
+def site_runner_command(runtime_api_address: str) -> list[str]:
+    """Return the command that starts a site's task runner (:mod:`site_agent.task_runner`)."""
+    return [
+        sys.executable,
+        "-m",
+        "site_agent.task_runner",
+        "--runtime-api-address",
+        runtime_api_address,
+    ]
 
 
 def free_port() -> int:
