@@ -173,6 +173,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--poll-s", type=float, default=DEFAULT_POLL_S)
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.INFO)
+    logging.getLogger("httpx").setLevel(logging.WARNING)  # one line per poll otherwise
     run_tasks(args.runtime_api_address, approved_bundles=args.approved_bundles, poll_s=args.poll_s)
 
 

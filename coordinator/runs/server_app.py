@@ -110,6 +110,10 @@ class RunRecord(BaseModel):
     monitoring: MonitoringOutcome | None = None
     error_class: str | None = None
     error: str | None = None
+    seconds: dict[str, float] = Field(
+        default_factory=dict,
+        description="Wall time of the run's steps (waiting for sites, rounds), for benchmarks.",
+    )
 
     def unwrap(self) -> StudyOutcome:
         """Return the outcome, or raise :class:`DeploymentError` with the recorded error."""
@@ -139,25 +143,39 @@ app = ServerApp()
 def main(grid: Grid, context: Context) -> None:
     """Run the study named in the run config and write its :class:`RunRecord`."""
     config = StudyRunConfig.from_run_config(context.run_config)
+    seconds: dict[str, float] = {}
     try:
         if config.store_path is not None:
             record = RunRecord(monitoring=run_configured_monitoring(grid, config))
         else:
-            record = RunRecord(outcome=run_configured_study(grid, config))
+            record = RunRecord(outcome=run_configured_study(grid, config, seconds), seconds=seconds)
     except Exception as exc:  # recorded for the engine that waits on the file, then re-raised
         _write(config.results_path, RunRecord(error_class=type(exc).__name__, error=str(exc)))
         raise
     _write(config.results_path, record)
 
 
-def run_configured_study(grid: Grid, config: StudyRunConfig) -> StudyOutcome:
-    """Load the protocol and bundle, wait for the sites, run every round."""
+def run_configured_study(
+    grid: Grid, config: StudyRunConfig, seconds: dict[str, float] | None = None
+) -> StudyOutcome:
+    """Load the protocol and bundle, wait for the sites, run every round.
+
+    ``seconds``, if given, receives the wall time of each step (``waiting_for_sites``,
+    ``evaluation_rounds``, ``fine_tuning``).
+    """
+    timed = seconds if seconds is not None else {}
     protocol = StudyProtocol.load(config.protocol_path)
     bundle = None if config.bundle_path is None else _read_bundle(config.bundle_path)
+    started = time.perf_counter()
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
+    timed["waiting_for_sites"] = time.perf_counter() - started
+    started = time.perf_counter()
     outcome = run_study_rounds(grid, protocol, bundle)
+    timed["evaluation_rounds"] = time.perf_counter() - started
     if Operation.FINE_TUNE in protocol.operations and bundle is not None:
+        started = time.perf_counter()
         fine_tuning = run_fine_tuning(grid, protocol, bundle)
+        timed["fine_tuning"] = time.perf_counter() - started
         outcome = outcome.model_copy(update={"fine_tuning": fine_tuning})
     return outcome
 
