@@ -360,3 +360,58 @@ def _one_line(exc: BaseException) -> str:
     if isinstance(exc, OSError):
         return f"cannot read {exc.filename}: {exc.strerror}"
     return str(exc)
+
+
+@site_app.command(
+    "run-tasks",
+    help=(
+        "Answer the tasks of this site's SuperNode (started with --isolation process) in one "
+        "process, with the site agent installed here only: a run whose app bundle carries "
+        "code, unless its hash was approved, is refused before any of it is installed or "
+        f"imported, and the refusal is ledgered. Runs until stopped. {RESEARCH_NOTICE}"
+    ),
+)
+def run_tasks_command(
+    runtime_api_address: Annotated[
+        str,
+        typer.Option(
+            "--runtime-api-address", help="The SuperNode's --host:--port, e.g. 127.0.0.1:9094."
+        ),
+    ],
+    approved_bundles: Annotated[
+        Path | None,
+        typer.Option("--approved-bundles", help="The site's approved app-bundle hashes (JSON)."),
+    ] = None,
+) -> None:
+    """Serve the SuperNode's tasks until interrupted."""
+    import logging
+
+    from site_agent.task_runner import run_tasks
+
+    logging.getLogger("httpx").setLevel(logging.WARNING)
+    typer.echo(RESEARCH_NOTICE)
+    run_tasks(runtime_api_address, approved_bundles=approved_bundles)
+
+
+@site_app.command(
+    "approve-bundle",
+    help=(
+        "Approve a run's app bundle by its SHA-256, so a bundle that carries code is "
+        f"accepted (the site still answers with its own installed ClientApp). {RESEARCH_NOTICE}"
+    ),
+)
+def approve_bundle_command(
+    sha256: Annotated[str, typer.Argument(help="The bundle's SHA-256 (64 hex digits).")],
+    store: Annotated[
+        Path, typer.Option("--store", help="The site's approved-bundles file.")
+    ] = Path("approved-bundles.json"),
+) -> None:
+    """Record an app bundle's hash as approved."""
+    from site_agent.app_bundle import approve_bundle
+
+    if len(sha256) != 64 or any(c not in "0123456789abcdefABCDEF" for c in sha256):
+        typer.echo("error: a bundle hash is 64 hexadecimal digits", err=True)
+        raise typer.Exit(code=2)
+    approve_bundle(sha256, store)
+    typer.echo(f"approved app bundle {sha256.lower()} in {store}")
+    typer.echo(RESEARCH_NOTICE)

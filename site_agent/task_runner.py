@@ -74,8 +74,9 @@ def run_tasks(
     stop
         Set it to end the loop after the task in hand.
     """
-    # Import the site's ClientApp now: its imports are paid once, not per message.
+    # Import the site's ClientApp and the model code now: paid once, before the first task.
     from site_agent.client_app import app  # noqa: F401
+    from site_agent.training import model_bundle  # noqa: F401  (torch, for scoring)
 
     done = 0
     acquirer = _client(runtime_api_address, token=None)
@@ -111,6 +112,7 @@ def _run_one(address: str, token: str, approved_bundles: Path | None) -> None:
     """Run one task as Flower's ClientApp process would, with the bundle check first."""
     from site_agent.client_app import app
 
+    started = time.perf_counter()
     client = _client(address, token)
     heartbeat = HeartbeatSender(make_task_heartbeat_fn_http(client))
     heartbeat.start()
@@ -139,6 +141,7 @@ def _run_one(address: str, token: str, approved_bundles: Path | None) -> None:
         if heartbeat.is_running:
             heartbeat.stop()
         client.close()
+        logger.info("task %s in %.2f s", status, time.perf_counter() - started)
 
 
 def _ledger_refusal(message: Message, context: Context, check: BundleCheck) -> None:

@@ -170,7 +170,7 @@ def run_configured_study(
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
     timed["waiting_for_sites"] = time.perf_counter() - started
     started = time.perf_counter()
-    outcome = run_study_rounds(grid, protocol, bundle)
+    outcome = run_study_rounds(grid, protocol, bundle, timed)
     timed["evaluation_rounds"] = time.perf_counter() - started
     if Operation.FINE_TUNE in protocol.operations and bundle is not None:
         started = time.perf_counter()

@@ -10,8 +10,7 @@ one SuperLink, one SuperNode per site in process isolation, and each site's task
   process start and its wait for every SuperNode to connect);
 * ``wait for sites``: the ServerApp's wait until every SuperNode is connected;
 * ``per wave``: the evaluation rounds' wall time divided by the rounds, as the ServerApp
-  measured it around its rounds (the first wave includes each site runner's one-time
-  import of the model code, torch among it).
+  measured it around its rounds, and the first and later waves apart.
 
 The SuperNode's idle poll (a fixed 3 s sleep in flwr 1.42 when no message is waiting) and
 its 0.5 s wait for a reply are Flower's and bound a wave from below on average.
@@ -65,6 +64,13 @@ def measure(n_sites: int, rounds: int, workdir: Path) -> dict[str, float]:
         "to_results_s": finished - started,
         "wait_s": seconds.get("waiting_for_sites", float("nan")),
         "per_wave_s": seconds.get("evaluation_rounds", float("nan")) / rounds,
+        "first_wave_s": seconds.get("round_1", float("nan")),
+        "later_wave_s": (
+            sum(seconds.get(f"round_{r}", float("nan")) for r in range(2, rounds + 1))
+            / (rounds - 1)
+            if rounds > 1
+            else float("nan")
+        ),
     }
 
 
@@ -74,14 +80,18 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--sites", type=int, nargs="+", default=list(DEFAULT_SITE_COUNTS))
     parser.add_argument("--rounds", type=int, default=3)
     args = parser.parse_args(argv)
-    print("sites  rounds  start (s)  to results (s)  wait for sites (s)  per wave (s)")
+    print(
+        "sites  rounds  start (s)  to results (s)  wait for sites (s)  per wave (s)  "
+        "first wave (s)  later waves (s)"
+    )
     with tempfile.TemporaryDirectory() as tmp:
         for n in args.sites:
             row = measure(n, args.rounds, Path(tmp))
             print(
                 f"{row['sites']:>5}  {row['rounds']:>6}  {row['start_s']:>9.1f}  "
                 f"{row['to_results_s']:>14.1f}  {row['wait_s']:>18.1f}  "
-                f"{row['per_wave_s']:>12.2f}",
+                f"{row['per_wave_s']:>12.2f}  {row['first_wave_s']:>14.2f}  "
+                f"{row['later_wave_s']:>15.2f}",
                 flush=True,
             )
 
