@@ -15,6 +15,10 @@ one SuperLink, one SuperNode per site in process isolation, and each site's task
 The SuperNode's idle poll (a fixed 3 s sleep in flwr 1.42 when no message is waiting) and
 its 0.5 s wait for a reply are Flower's and bound a wave from below on average.
 
+With ``--federated``, the default rehearsal's adaptation also runs at 3 sites on the
+loopback deployment: the site-local fine-tuning wave, the plan's FedAvg rounds (10) and the
+measurement of the federated model; its wall time in the ServerApp is reported.
+
 Run with ``python -m simulations.benchmarks.deployment`` (CPU only). Figures vary with the
 machine and its load; the README quotes one run.
 """
@@ -74,11 +78,36 @@ def measure(n_sites: int, rounds: int, workdir: Path) -> dict[str, float]:
     }
 
 
+def measure_federated(n_sites: int, workdir: Path) -> dict[str, float]:
+    """Run the default rehearsal's adaptation (site-local, then 10 FedAvg rounds) on loopback."""
+    study = prepare_study(
+        default_scenario().with_sites(n_sites), workdir / f"adapt-{n_sites}", adapt=True
+    )
+    run_dir = workdir / f"adapt-run-{n_sites}"
+    started = time.perf_counter()
+    run_study(study.protocol, study.bundle_path, study.settings, engine="loopback", workdir=run_dir)
+    finished = time.perf_counter()
+    record = RunRecord.read(run_dir / RESULTS_FILE)
+    plan = study.protocol.adaptation
+    outcome = record.unwrap().fine_tuning
+    federated = None if outcome is None else outcome.federated
+    return {
+        "sites": n_sites,
+        "federated_rounds": 0 if plan is None else plan.federated_rounds,
+        "rounds_run": 0 if federated is None else len(federated.rounds),
+        "to_results_s": finished - started,
+        "fine_tuning_s": record.seconds.get("fine_tuning", float("nan")),
+    }
+
+
 def main(argv: list[str] | None = None) -> None:
     """Print the benchmark table."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--sites", type=int, nargs="+", default=list(DEFAULT_SITE_COUNTS))
     parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument(
+        "--federated", action="store_true", help="Also time the adaptation with FedAvg rounds."
+    )
     args = parser.parse_args(argv)
     print(
         "sites  rounds  start (s)  to results (s)  wait for sites (s)  per wave (s)  "
@@ -92,6 +121,15 @@ def main(argv: list[str] | None = None) -> None:
                 f"{row['to_results_s']:>14.1f}  {row['wait_s']:>18.1f}  "
                 f"{row['per_wave_s']:>12.2f}  {row['first_wave_s']:>14.2f}  "
                 f"{row['later_wave_s']:>15.2f}",
+                flush=True,
+            )
+        if args.federated:
+            row = measure_federated(3, Path(tmp))
+            print(
+                f"adaptation at 3 sites (site-local fine-tuning, {row['federated_rounds']:.0f} "
+                f"FedAvg rounds planned, {row['rounds_run']:.0f} run, final measurement): "
+                f"{row['fine_tuning_s']:.1f} s in the ServerApp, "
+                f"{row['to_results_s']:.1f} s from start to results",
                 flush=True,
             )
 
