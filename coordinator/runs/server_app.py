@@ -176,7 +176,7 @@ def run_configured_study(
     timed["evaluation_rounds"] = time.perf_counter() - started
     if Operation.FINE_TUNE in protocol.operations and bundle is not None:
         started = time.perf_counter()
-        fine_tuning = run_fine_tuning(grid, protocol, bundle)
+        fine_tuning = run_fine_tuning(grid, protocol, bundle, timed)
         timed["fine_tuning"] = time.perf_counter() - started
         outcome = outcome.model_copy(update={"fine_tuning": fine_tuning})
     return outcome
