@@ -242,3 +242,65 @@ def test_file_answer_is_ledgered_and_a_second_answer_is_not_charged(
     assert site.ledger_path is not None
     entries = ReleaseLedger(site.ledger_path).entries()
     assert [e.epsilon_spent for e in entries] == [0.5, 0.0]
+
+
+def test_commands_answer_into_a_file_and_pool_the_folder(
+    tmp_path: Path, three_sites: list[SiteSettings], study_protocol: StudyProtocol, admitted: Path
+) -> None:
+    """`site answer-into-file` then `pool-files`: results and report written, tampering named."""
+    from typer.testing import CliRunner
+
+    from simulations.cli import app
+
+    runner = CliRunner()
+    protocol_path = tmp_path / "protocol.json"
+    protocol_path.write_text(study_protocol.model_dump_json())
+    inbox = tmp_path / "inbox"
+    for site in three_sites:
+        key = _make_keys(tmp_path / "keys", site.site, admitted)
+        result = runner.invoke(
+            app,
+            [
+                "site",
+                "answer-into-file",
+                str(protocol_path),
+                "--site",
+                site.site,
+                "--data",
+                str(site.data_path),
+                "--policy",
+                str(site.policy_path),
+                "--ledger",
+                str(site.ledger_path),
+                "--key",
+                str(key),
+                "--out",
+                str(inbox / f"{site.site}{SIGNED_RELEASE_SUFFIX}"),
+            ],
+        )
+        assert result.exit_code == 0, result.output
+        assert "released: statistics released" in result.output
+    tampered = inbox / f"{three_sites[2].site}{SIGNED_RELEASE_SUFFIX}"
+    tampered.write_text(
+        tampered.read_text().replace('"n_observations": 60', '"n_observations": 61')
+    )
+
+    result = runner.invoke(
+        app,
+        [
+            "pool-files",
+            str(inbox),
+            "--protocol",
+            str(protocol_path),
+            "--admitted-keys",
+            str(admitted),
+            "--out",
+            str(tmp_path / "out"),
+        ],
+    )
+
+    assert result.exit_code == 0, result.output
+    assert "pooled 2 site(s) from files; 0 declined; 1 file(s) refused" in result.output
+    assert "refused: the signature does not match the content" in result.output
+    assert (tmp_path / "out" / "report.html").exists()
+    assert "research tool" in result.output
