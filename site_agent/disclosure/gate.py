@@ -79,6 +79,7 @@ from site_agent.disclosure.ledger import LedgerEntry, LedgerSession, Outcome, Re
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
 from site_agent.disclosure.privacy_budget import check_budget, noised_release
 from site_agent.disclosure.repeat_answer import (
+    data_fingerprint,
     find_earlier_answer,
     ledger_repeat,
     repeated_reply,
@@ -617,6 +618,7 @@ def disclosure_mod(
     ledger: ReleaseLedger | None = None
     request: SiteRequest | None = None
     study_id: str | None = None
+    key: str | None = None
     if msg.metadata.message_type == MessageType.TRAIN:
         # Weight updates for Flower's strategies pass their own gate (imported here: it
         # builds on this module, and it needs torch-free Flower records only).
@@ -643,9 +645,10 @@ def disclosure_mod(
             request, policy, coordinator=None if coordinator is None else str(coordinator)
         )
         study_id = protocol.study_id
-        earlier = find_earlier_answer(ledger, request)
+        key = request_key(request, data_fingerprint(context.node_config))
+        earlier = find_earlier_answer(ledger, key)
         if earlier is not None:  # asked again: the same answer, charged once (repeat_answer)
-            return _repeated(msg, earlier, ledger, request, study_id)
+            return _repeated(msg, earlier, ledger, request, study_id, key)
         reply = call_next(msg, context)
         if reply.has_error():
             raise _refuse(RefusalCode.SITE_ERROR)
@@ -655,15 +658,17 @@ def disclosure_mod(
         ):
             raise _refuse(_ERROR_CODES.get(answered.error_class or "", RefusalCode.SITE_ERROR))
         if answered.adaptation is not None:
-            return _released_adaptation(msg, reply, answered, policy, ledger, request, protocol)
-        return _released(msg, answered, policy, ledger, request, study_id)
+            return _released_adaptation(
+                msg, reply, answered, policy, ledger, request, protocol, key
+            )
+        return _released(msg, answered, policy, ledger, request, study_id, key)
     except Exception as exc:  # every failure is declined with a fixed reason code only
         code = _code_of(exc)
         if isinstance(exc, DisclosureRefused):  # the policy working as meant: no traceback
             logger.warning("site %s refused a request: %s", site, code.value)
         else:
             logger.error("site %s declined a request: %s", site, code.value, exc_info=exc)
-        return _declined(msg, site, request_id, code, ledger, request, study_id)
+        return _declined(msg, site, request_id, code, ledger, request, study_id, answer_key=key)
 
 
 def _code_of(exc: BaseException) -> RefusalCode:
@@ -682,6 +687,7 @@ def _released(
     ledger: ReleaseLedger,
     request: SiteRequest,
     study_id: str,
+    key: str,
 ) -> Message:
     assert answered.release is not None  # checked by the caller
     operation = request.operation.value
@@ -701,7 +707,15 @@ def _released(
             code = _code_of(exc)
             logger.info("site %s declined a noisy release: %s", answered.site, code.value)
             return _declined(
-                msg, answered.site, answered.request_id, code, session, request, study_id, epsilon
+                msg,
+                answered.site,
+                answered.request_id,
+                code,
+                session,
+                request,
+                study_id,
+                epsilon,
+                answer_key=key,
             )
         out = answered.model_copy(update={"release": release})
         out = SiteReply.model_validate(out.model_dump())
@@ -718,7 +732,7 @@ def _released(
             operation=operation,
             released=released,
             epsilon_spent=epsilon or 0.0,
-            request_key=request_key(request),
+            request_key=key,
         )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
@@ -734,6 +748,7 @@ def _released_adaptation(
     ledger: ReleaseLedger,
     request: SiteRequest,
     protocol: StudyProtocol,
+    key: str,
 ) -> Message:
     """Release a fine_tune reply under the minimum cell size; ledger it.
 
@@ -775,7 +790,7 @@ def _released_adaptation(
             operation=request.operation.value,
             released=released,
             epsilon_spent=epsilon,
-            request_key=request_key(request),
+            request_key=key,
         )
     if update is not None:
         content[LOCAL_UPDATE_RECORD] = update
@@ -791,10 +806,11 @@ def _repeated(
     ledger: ReleaseLedger,
     request: SiteRequest,
     study_id: str,
+    key: str,
 ) -> Message:
     """Send the ledgered answer ``earlier`` again with its own receipt; ledger the repeat."""
     content = encode_reply(repeated_reply(earlier, request))
-    ledger_repeat(ledger, earlier, request, study_id)
+    ledger_repeat(ledger, earlier, request, study_id, key)
     record = ConfigRecord({_SEQUENCE_KEY: earlier.sequence, _HASH_KEY: earlier.entry_hash})
     released = earlier.released
     if isinstance(released, dict) and "disclosure" in released:
@@ -812,6 +828,8 @@ def _declined(
     request: SiteRequest | None,
     study_id: str | None,
     epsilon_spent: float = 0.0,
+    *,
+    answer_key: str | None = None,
 ) -> Message:
     reply = SiteReply(
         site=site,
@@ -831,7 +849,7 @@ def _declined(
                 reason=code.value,
                 released=json.loads(reply.model_dump_json()),
                 epsilon_spent=epsilon_spent,
-                request_key=request_key(request) if request is not None else None,
+                request_key=answer_key,
             )
             content[DISCLOSURE_RECORD] = ConfigRecord(
                 {_SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}

@@ -7,7 +7,9 @@ with differential privacy on, harmful: a fresh noisy release of the same statist
 second draw that is charged again and, averaged with the first, narrows the noise. So the
 gate answers a re-asked request from its ledger:
 
-* the ledger entry of the first answer carries the request's :func:`request_key`;
+* the ledger entry of the first answer carries the request's :func:`request_key`, which
+  includes the SHA-256 of the site's data file: on changed data (labels that arrived,
+  a corrected table) the same question is a new one, answered and charged afresh;
 * a later request with the same key gets the ledgered reply again (with the new request id),
   the ledger receipt of the first answer (its sequence and entry hash), and no new charge;
 * the repeat itself is ledgered, with ``epsilon_spent`` 0 and a pointer to the first entry,
@@ -23,23 +25,46 @@ update's hash and norm, not its values); a re-ask of it is answered afresh and c
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Mapping
 from typing import Any
 
 from site_agent.contract.wire import SiteReply, SiteRequest
 from site_agent.disclosure.ledger import LedgerEntry, Outcome, ReleaseLedger, canonical_json
+from site_agent.service import DATA_PATH_KEY
 
 REPEAT_KEY = "repeat_of"
 """Key of a repeat entry's ``released`` object: the sequence of the entry it repeats."""
 _REPEAT_HASH_KEY = "repeat_of_entry_hash"
 
 
-def request_key(request: SiteRequest) -> str:
+def data_fingerprint(node_config: Mapping[str, bool | int | float | str]) -> str | None:
+    """Return the SHA-256 of the site's data file, or None when it cannot be read.
+
+    Part of the key: the same question on changed data (labels that arrived, a corrected
+    table) is a new question and is answered afresh.
+    """
+    path = str(node_config.get(DATA_PATH_KEY, ""))
+    if not path:
+        return None
+    digest = hashlib.sha256()
+    try:
+        with open(path, "rb") as handle:
+            for block in iter(lambda: handle.read(1 << 20), b""):
+                digest.update(block)
+    except OSError:
+        return None
+    return digest.hexdigest()
+
+
+def request_key(request: SiteRequest, data: str | None = None) -> str:
     """Return the SHA-256 that names what ``request`` asks for, whatever its request id.
 
     Two requests have the same key when they ask for the same operation under the same
-    protocol hash, in the same round and time window, both with or without a weight update.
+    protocol hash, in the same round and time window, both with or without a weight update,
+    of the same data (``data``: :func:`data_fingerprint`).
     """
     asked = {
+        "data": data,
         "operation": request.operation.value,
         "protocol_hash": request.protocol_hash,
         "round_number": request.round_number,
@@ -76,7 +101,11 @@ def repeated_reply(entry: LedgerEntry, request: SiteRequest) -> SiteReply:
 
 
 def ledger_repeat(
-    ledger: ReleaseLedger, entry: LedgerEntry, request: SiteRequest, study_id: str | None
+    ledger: ReleaseLedger,
+    entry: LedgerEntry,
+    request: SiteRequest,
+    study_id: str | None,
+    key: str,
 ) -> LedgerEntry:
     """Record that the answer of ``entry`` was sent again, charging nothing; return the record."""
     return ledger.append(
@@ -87,10 +116,10 @@ def ledger_repeat(
         reason=entry.reason,
         released={REPEAT_KEY: entry.sequence, _REPEAT_HASH_KEY: entry.entry_hash},
         epsilon_spent=0.0,
-        request_key=request_key(request),
+        request_key=key,
     )
 
 
-def find_earlier_answer(ledger: ReleaseLedger, request: SiteRequest) -> LedgerEntry | None:
-    """Return the ledgered first answer to a request like ``request``, or None."""
-    return earlier_answer(ledger.entries(), request_key(request))
+def find_earlier_answer(ledger: ReleaseLedger, key: str) -> LedgerEntry | None:
+    """Return the ledgered first answer under ``key`` (:func:`request_key`), or None."""
+    return earlier_answer(ledger.entries(), key)

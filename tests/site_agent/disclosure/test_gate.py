@@ -592,3 +592,19 @@ def test_uncharged_decline_is_decided_again_when_reasked(tmp_path: Path) -> None
 
     assert decode_reply(first.content).status is ReplyStatus.DECLINED
     assert decode_reply(second.content).status is ReplyStatus.RELEASED
+
+
+def test_reask_on_changed_data_is_answered_afresh_and_charged(tmp_path: Path) -> None:
+    """Round 1 asked again after the table changed is a new question: a new draw, charged."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=2.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    _ask(site, protocol)
+    _write_table(site.data, seed=6)  # the same cases' labels and scores, revised
+    _ask(site, protocol)
+
+    entries = ReleaseLedger(site.ledger).entries()
+    assert [e.epsilon_spent for e in entries] == [0.5, 0.5]
+    assert entries[0].request_key != entries[1].request_key
