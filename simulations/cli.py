@@ -20,6 +20,7 @@ from rich.console import Console
 from coordinator.cli import add_meta_command
 from coordinator.deployment.cli import coordinator_app
 from coordinator.monitoring.cli import add_monitor_command
+from coordinator.pool_files_cli import add_pool_files_command
 from simulations.drift_cli import add_rehearse_drift_command
 from simulations.planning_cli import add_plan_command
 from site_agent.cli import site_app
@@ -45,6 +46,7 @@ add_meta_command(app)
 add_monitor_command(app)
 add_rehearse_drift_command(app)
 add_plan_command(app)
+add_pool_files_command(app)
 
 
 @app.command(

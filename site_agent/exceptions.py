@@ -6,7 +6,8 @@ Every error the project raises derives from :class:`SitepoolError`::
     ├── InputError               bad input from a user or a file; nothing was released
     │   ├── PredictionsError     a predictions table failed validation (row, column)
     │   ├── ScenarioError        a simulation scenario file is invalid
-    │   └── EmptyWindowError     a monitoring request's time window holds no case
+    │   ├── EmptyWindowError     a monitoring request's time window holds no case
+    │   └── ReleaseFileRefused   a signed release file failed a check (path, site)
     ├── ProtocolError            a study protocol is malformed or does not match its hash
     ├── BundleError              a model bundle is missing, corrupt or fails its hash check
     ├── DisclosureRefused        a site's policy refused a request (reason, operation)
@@ -59,6 +60,26 @@ class ScenarioError(InputError):
 
 class EmptyWindowError(InputError):
     """A monitoring request's time window holds no case at the site; nothing to release."""
+
+
+class ReleaseFileRefused(InputError):
+    """A signed release file failed a check and is not pooled.
+
+    Parameters
+    ----------
+    reason
+        One line naming the failed check; never a value from the release.
+    path
+        The file.
+    site
+        The site the file names, when it could be read.
+    """
+
+    def __init__(self, reason: str, *, path: object, site: str | None = None):
+        super().__init__(f"{path}: refused: {reason}")
+        self.reason = reason
+        self.path = path
+        self.site = site
 
 
 class ProtocolError(SitepoolError):

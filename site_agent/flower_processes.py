@@ -30,6 +30,21 @@ _STOP_GRACE_S = 5.0
 _LOG_TAIL_LINES = 25
 
 
+def site_runner_command(runtime_api_address: str) -> list[str]:
+    """Return the command that starts a site's task runner (:mod:`site_agent.task_runner`).
+
+    The runner takes the SuperNode's tasks in place of Flower's own ClientApp process,
+    so that no code from a run's app bundle is loaded at the site.
+    """
+    return [
+        sys.executable,
+        "-m",
+        "site_agent.task_runner",
+        "--runtime-api-address",
+        runtime_api_address,
+    ]
+
+
 def free_port() -> int:
     """Return a TCP port on 127.0.0.1 that was free a moment ago."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:

@@ -18,6 +18,7 @@ degraded site, the paired DeLong change of AUC that local adaptation brought
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Mapping
 
 from flwr.serverapp import Grid
@@ -51,8 +52,15 @@ class FineTuningOutcome(BaseModel):
     federated: FederatedRun | None = None
 
 
-def run_fine_tuning(grid: Grid, protocol: StudyProtocol, bundle: bytes) -> FineTuningOutcome:
+def run_fine_tuning(
+    grid: Grid,
+    protocol: StudyProtocol,
+    bundle: bytes,
+    seconds: dict[str, float] | None = None,
+) -> FineTuningOutcome:
     """Run site-local adaptation, then (if the plan asks for rounds) federated fine-tuning.
+
+    ``seconds``, if given, receives the wall time of ``site_local`` and ``federated``.
 
     Raises
     ------
@@ -61,13 +69,18 @@ def run_fine_tuning(grid: Grid, protocol: StudyProtocol, bundle: bytes) -> FineT
     DeploymentError
         If fewer sites than the quorum take part in a step.
     """
+    timed = seconds if seconds is not None else {}
+    started = time.perf_counter()
     local = request_adaptation(grid, protocol, bundle)
+    timed["site_local"] = time.perf_counter() - started
     plan = protocol.adaptation
+    started = time.perf_counter()
     federated = (
         run_federated(grid, protocol, bundle)
         if plan is not None and plan.federated_rounds > 0
         else None
     )
+    timed["federated"] = time.perf_counter() - started
     return FineTuningOutcome(local=local, federated=federated)
 
 

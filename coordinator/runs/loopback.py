@@ -31,6 +31,7 @@ from site_agent.flower_processes import (
     flower_tool,
     free_port,
     process_groups,
+    site_runner_command,
     wait_for_port,
 )
 from site_agent.service import SiteSettings
@@ -87,6 +88,7 @@ def run_loopback(
         # SuperNodes retry until the SuperLink answers: start them now, not after it listens.
         for index, site in enumerate(sites):
             node_config = layout.node_config(index, site.to_node_config())
+            runtime_port = free_port()
             processes.start(
                 f"supernode-{index}",
                 [
@@ -97,11 +99,19 @@ def run_loopback(
                     "--host",
                     LOOPBACK,
                     "--port",
-                    str(free_port()),
+                    str(runtime_port),
                     "--node-config",
                     str(node_config),
+                    # The site's own task runner takes the tasks (no app bundle is installed).
+                    "--isolation",
+                    "process",
                 ],
                 layout.log(f"supernode-{index}"),
+            )
+            processes.start(
+                f"site-runner-{index}",
+                site_runner_command(f"{LOOPBACK}:{runtime_port}"),
+                layout.log(f"site-runner-{index}"),
             )
         wait_for_port(link_port, SUPERLINK_START_TIMEOUT_S, processes)
         say(f"SuperLink listening on {LOOPBACK}:{link_port}; {len(sites)} SuperNodes started")

@@ -177,12 +177,22 @@ def run_evaluation_round(
     return outcome
 
 
-def run_study_rounds(grid: Grid, protocol: StudyProtocol, bundle: bytes | None) -> StudyOutcome:
-    """Run ``protocol.rounds`` evaluation rounds; stop at the first that misses the quorum."""
-    rounds = [
-        run_evaluation_round(grid, protocol, bundle, number)
-        for number in range(1, protocol.rounds + 1)
-    ]
+def run_study_rounds(
+    grid: Grid,
+    protocol: StudyProtocol,
+    bundle: bytes | None,
+    seconds: dict[str, float] | None = None,
+) -> StudyOutcome:
+    """Run ``protocol.rounds`` evaluation rounds; stop at the first that misses the quorum.
+
+    ``seconds``, if given, receives each round's wall time under ``round_<n>``.
+    """
+    rounds = []
+    for number in range(1, protocol.rounds + 1):
+        started = time.perf_counter()
+        rounds.append(run_evaluation_round(grid, protocol, bundle, number))
+        if seconds is not None:
+            seconds[f"round_{number}"] = time.perf_counter() - started
     return StudyOutcome(
         study_id=protocol.study_id, protocol_hash=protocol.content_hash(), rounds=rounds
     )

@@ -46,7 +46,7 @@ from site_agent.contract.wire import (
     encode_reply,
 )
 from site_agent.disclosure.adaptation_control import control_adaptation
-from site_agent.disclosure.ledger import LedgerSession, Outcome, ReleaseLedger
+from site_agent.disclosure.ledger import LedgerEntry, LedgerSession, Outcome, ReleaseLedger
 from site_agent.disclosure.policy import SitePolicy
 from site_agent.disclosure.privacy_budget import check_budget
 from site_agent.disclosure.refusals import (
@@ -55,6 +55,13 @@ from site_agent.disclosure.refusals import (
     refusal,
     refusal_code,
     refusal_reason,
+)
+from site_agent.disclosure.repeat_answer import (
+    data_fingerprint,
+    find_earlier_answer,
+    ledger_repeat,
+    repeated_reply,
+    request_key,
 )
 from site_agent.disclosure.request_check import COORDINATOR_NAME_KEY, check_request
 from site_agent.disclosure.small_cells import DisclosureNote, apply_policy
@@ -103,6 +110,7 @@ def disclosure_mod(
     ledger: ReleaseLedger | None = None
     request: SiteRequest | None = None
     study_id: str | None = None
+    key: str | None = None
     if msg.metadata.message_type == MessageType.TRAIN:
         # Weight updates for Flower's strategies pass their own gate.
         return update_disclosure(msg, context, call_next)
@@ -126,6 +134,10 @@ def disclosure_mod(
             request, policy, coordinator=None if coordinator is None else str(coordinator)
         )
         study_id = protocol.study_id
+        key = request_key(request, data_fingerprint(context.node_config))
+        earlier = find_earlier_answer(ledger, key)
+        if earlier is not None:  # asked again: the same answer, charged once (repeat_answer)
+            return _repeated(msg, earlier, ledger, request, study_id, key)
         reply = call_next(msg, context)
         if reply.has_error():
             raise refusal(RefusalCode.SITE_ERROR)
@@ -135,15 +147,17 @@ def disclosure_mod(
         ):
             raise refusal(error_class_code(answered.error_class))
         if answered.adaptation is not None:
-            return _released_adaptation(msg, reply, answered, policy, ledger, request, protocol)
-        return _released(msg, answered, policy, ledger, request, study_id)
+            return _released_adaptation(
+                msg, reply, answered, policy, ledger, request, protocol, key
+            )
+        return _released(msg, answered, policy, ledger, request, study_id, key)
     except Exception as exc:  # every failure is declined with a fixed reason code only
         code = refusal_code(exc)
         if isinstance(exc, DisclosureRefused):  # the policy working as meant: no traceback
             logger.warning("site %s refused a request: %s", site, code.value)
         else:
             logger.error("site %s declined a request: %s", site, code.value, exc_info=exc)
-        return _declined(msg, site, request_id, code, ledger, request, study_id)
+        return _declined(msg, site, request_id, code, ledger, request, study_id, answer_key=key)
 
 
 def _released(
@@ -153,6 +167,7 @@ def _released(
     ledger: ReleaseLedger,
     request: SiteRequest,
     study_id: str,
+    key: str,
 ) -> Message:
     assert answered.release is not None  # checked by the caller
     operation = request.operation.value
@@ -172,7 +187,15 @@ def _released(
             code = refusal_code(exc)
             logger.info("site %s declined a noisy release: %s", answered.site, code.value)
             return _declined(
-                msg, answered.site, answered.request_id, code, session, request, study_id, epsilon
+                msg,
+                answered.site,
+                answered.request_id,
+                code,
+                session,
+                request,
+                study_id,
+                epsilon,
+                answer_key=key,
             )
         out = answered.model_copy(update={"release": release})
         out = SiteReply.model_validate(out.model_dump())
@@ -189,6 +212,7 @@ def _released(
             operation=operation,
             released=released,
             epsilon_spent=epsilon or 0.0,
+            request_key=key,
         )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
@@ -204,6 +228,7 @@ def _released_adaptation(
     ledger: ReleaseLedger,
     request: SiteRequest,
     protocol: StudyProtocol,
+    key: str,
 ) -> Message:
     """Release a fine_tune reply under the minimum cell size; ledger it.
 
@@ -242,12 +267,32 @@ def _released_adaptation(
             operation=request.operation.value,
             released=released,
             epsilon_spent=epsilon,
+            request_key=key,
         )
     if update is not None:
         content[LOCAL_UPDATE_RECORD] = update
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )
+    return Message(content, reply_to=msg)
+
+
+def _repeated(
+    msg: Message,
+    earlier: LedgerEntry,
+    ledger: ReleaseLedger,
+    request: SiteRequest,
+    study_id: str,
+    key: str,
+) -> Message:
+    """Send the ledgered answer ``earlier`` again with its own receipt; ledger the repeat."""
+    content = encode_reply(repeated_reply(earlier, request))
+    ledger_repeat(ledger, earlier, request, study_id, key)
+    record = ConfigRecord({_SEQUENCE_KEY: earlier.sequence, _HASH_KEY: earlier.entry_hash})
+    released = earlier.released
+    if isinstance(released, dict) and "disclosure" in released:
+        record[_NOTE_KEY] = json.dumps(released["disclosure"])
+    content[DISCLOSURE_RECORD] = record
     return Message(content, reply_to=msg)
 
 
@@ -260,6 +305,8 @@ def _declined(
     request: SiteRequest | None,
     study_id: str | None,
     epsilon_spent: float = 0.0,
+    *,
+    answer_key: str | None = None,
 ) -> Message:
     reply = SiteReply(
         site=site,
@@ -279,6 +326,7 @@ def _declined(
                 reason=code.value,
                 released=json.loads(reply.model_dump_json()),
                 epsilon_spent=epsilon_spent,
+                request_key=answer_key,
             )
             content[DISCLOSURE_RECORD] = ConfigRecord(
                 {_SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}

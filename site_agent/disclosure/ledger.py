@@ -70,6 +70,11 @@ class LedgerEntry(BaseModel):
     reason: str | None = Field(default=None, description="Reason code of a refusal.")
     released: JsonValue = Field(default=None, description="The exact JSON that left the site.")
     epsilon_spent: float = Field(default=0.0, ge=0)
+    request_key: str | None = Field(
+        default=None,
+        pattern=r"^[0-9a-f]{64}$",
+        description="What was asked (site_agent.disclosure.repeat_answer.request_key).",
+    )
     previous_hash: str = Field(pattern=r"^[0-9a-f]{64}$")
     entry_hash: str = Field(pattern=r"^[0-9a-f]{64}$")
 
@@ -171,6 +176,7 @@ class ReleaseLedger:
         reason: str | None = None,
         released: JsonValue = None,
         epsilon_spent: float = 0.0,
+        request_key: str | None = None,
     ) -> LedgerEntry:
         """Append one entry in its own session and return it."""
         with self.session() as session:
@@ -182,6 +188,7 @@ class ReleaseLedger:
                 reason=reason,
                 released=released,
                 epsilon_spent=epsilon_spent,
+                request_key=request_key,
             )
 
 
@@ -249,8 +256,13 @@ class LedgerSession:
         reason: str | None = None,
         released: JsonValue = None,
         epsilon_spent: float = 0.0,
+        request_key: str | None = None,
     ) -> LedgerEntry:
-        """Write one entry durably (write, flush, fsync, then update the head file)."""
+        """Write one entry durably (write, flush, fsync, then update the head file).
+
+        ``request_key`` is written only when given, so entries written before the field
+        existed keep their hashes.
+        """
         previous = self._entries[-1].entry_hash if self._entries else GENESIS_HASH
         fields: dict[str, Any] = {
             "sequence": len(self._entries) + 1,
@@ -264,6 +276,8 @@ class LedgerSession:
             "epsilon_spent": float(epsilon_spent),
             "previous_hash": previous,
         }
+        if request_key is not None:
+            fields["request_key"] = request_key
         fields["entry_hash"] = _digest(fields)
         entry = LedgerEntry.model_validate(fields)
         line = (canonical_json(fields) + "\n").encode()

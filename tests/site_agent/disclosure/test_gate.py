@@ -117,22 +117,26 @@ def _ask(
     protocol: StudyProtocol,
     *,
     times: int = 1,
+    rounds: list[int] | None = None,
     protocol_hash: str | None = None,
     run_config: dict[str, bool | int | float | str] | None = None,
     client: ClientApp = site_client_app,
 ) -> list[Message]:
-    """Send ``times`` evaluation requests as real Flower messages; return the raw replies."""
+    """Send evaluation requests as real Flower messages; return the raw replies.
+
+    One request per entry of ``rounds`` (its round number), else ``times`` requests of round 1.
+    """
     server = ServerApp()
     replies: list[Message] = []
 
     @server.main()
     def main(grid: Grid, context: Context) -> None:
-        for _ in range(times):
+        for round_number in rounds or [1] * times:
             request = SiteRequest(
                 operation=Operation.EVALUATE,
                 protocol_json=protocol.canonical_json(),
                 protocol_hash=protocol_hash or protocol.content_hash(),
-                round_number=1,
+                round_number=round_number,
                 request_id=uuid.uuid4().hex,
             )
             (node,) = grid.get_node_ids()
@@ -281,10 +285,10 @@ def test_repeated_queries_are_refused_once_the_privacy_budget_is_spent(tmp_path:
     """With ε = 0.5 per release and 1.0 per study, the third request is declined."""
     privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
     site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
-    protocol = _protocol(histogram_edges=uniform_edges(10))
+    protocol = _protocol(histogram_edges=uniform_edges(10)).model_copy(update={"rounds": 4})
     site.approve(protocol)
 
-    replies = _ask(site, protocol, times=4)
+    replies = _ask(site, protocol, rounds=[1, 2, 3, 4])
 
     # The first two requests each spend ε = 0.5: released, or declined when a rule fires on
     # the noisy counts (that decision is itself a DP output and is charged too).
@@ -451,3 +455,73 @@ def test_apply_policy_refuses_disallowed_subgroups_in_a_release(tmp_path: Path) 
 
     with pytest.raises(DisclosureRefused, match="subgroup_attribute_not_allowed"):
         apply_policy(release, site.policy)
+
+
+def test_reasked_release_is_the_ledgered_one_and_charged_once(tmp_path: Path) -> None:
+    """Round 1 asked three times under DP: one noisy draw, sent three times, ε charged once."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10)).model_copy(update={"rounds": 2})
+    site.approve(protocol)
+
+    replies = _ask(site, protocol, rounds=[1, 1, 1, 2])
+
+    answers = [decode_reply(r.content) for r in replies]
+    first = answers[0]  # released, or declined on noisy counts (charged): either is repeated
+    for again in answers[1:3]:
+        assert again.request_id != first.request_id  # addressed to the new request
+        assert again == first.model_copy(update={"request_id": again.request_id})
+    receipts = [read_disclosure(r)[1:] for r in replies]
+    assert receipts[1] == receipts[2] == receipts[0]  # the first answer's ledger receipt
+    entries = ReleaseLedger(site.ledger).entries()
+    assert [e.epsilon_spent for e in entries] == [0.5, 0.0, 0.0, 0.5]
+    assert [e.released.get("repeat_of") for e in entries] == [None, 1, 1, None]  # type: ignore[union-attr]
+    assert verify_ledger(site.ledger).ok
+
+
+def test_reask_after_budget_is_spent_still_gets_the_first_answer(tmp_path: Path) -> None:
+    """With the budget spent by rounds 1 and 2, round 1 asked again is still answered."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10)).model_copy(update={"rounds": 3})
+    site.approve(protocol)
+
+    replies = _ask(site, protocol, rounds=[1, 2, 3, 1])
+
+    _declined_with(replies[2], RefusalCode.PRIVACY_BUDGET_EXHAUSTED)
+    assert decode_reply(replies[3].content) == decode_reply(replies[0].content).model_copy(
+        update={"request_id": decode_reply(replies[3].content).request_id}
+    )
+    assert sum(e.epsilon_spent for e in ReleaseLedger(site.ledger).entries()) == 1.0
+
+
+def test_uncharged_decline_is_decided_again_when_reasked(tmp_path: Path) -> None:
+    """A decline that cost nothing (data missing) is not repeated: fixed data is released."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+    table = site.data.read_text()
+    site.data.unlink()
+
+    (first,) = _ask(site, protocol)
+    site.data.write_text(table)
+    (second,) = _ask(site, protocol)
+
+    assert decode_reply(first.content).status is ReplyStatus.DECLINED
+    assert decode_reply(second.content).status is ReplyStatus.RELEASED
+
+
+def test_reask_on_changed_data_is_answered_afresh_and_charged(tmp_path: Path) -> None:
+    """Round 1 asked again after the table changed is a new question: a new draw, charged."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=2.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+
+    _ask(site, protocol)
+    _write_table(site.data, seed=6)  # the same cases' labels and scores, revised
+    _ask(site, protocol)
+
+    entries = ReleaseLedger(site.ledger).entries()
+    assert [e.epsilon_spent for e in entries] == [0.5, 0.5]
+    assert entries[0].request_key != entries[1].request_key
