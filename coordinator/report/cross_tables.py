@@ -12,7 +12,7 @@ from collections.abc import Sequence
 
 from coordinator.pooling.study_results import MetricRow, StudyResults
 from coordinator.report.html_parts import esc, estimate_cell, html_table, site_label, slug
-from site_agent.statistics.censored import cell_text, class_total, is_censored, sum_text
+from site_agent.statistics.censored import Cell, cell_text, class_total, is_censored, sum_text
 
 
 def two_by_two_section(results: StudyResults) -> str:
@@ -24,8 +24,8 @@ def two_by_two_section(results: StudyResults) -> str:
         index = seen[t.site] = seen.get(t.site, 0) + 1
         positives, negatives = class_total(t.tp, t.fn), class_total(t.fp, t.tn)
         rows = [
-            ["Index test positive", cell_text(t.tp), cell_text(t.fp), sum_text(t.tp, t.fp)],
-            ["Index test negative", cell_text(t.fn), cell_text(t.tn), sum_text(t.fn, t.tn)],
+            ["Index test positive", *_cells(t.tp, t.fp)],
+            ["Index test negative", *_cells(t.fn, t.tn)],
             ["Total", str(positives), str(negatives), str(positives + negatives)],
         ]
         censored = censored or is_censored(t.tp, t.fp, t.fn, t.tn)
@@ -49,6 +49,11 @@ def two_by_two_section(results: StudyResults) -> str:
         f"reference standard, per site and threshold (STARD 2015 item 23).{legend}</p>"
         f'<div class="cards">{"".join(cards)}</div>'
     )
+
+
+def _cells(left: Cell, right: Cell) -> list[str]:
+    """Return one row's two cells and their sum, escaped: a censored cell reads ``<m``."""
+    return [esc(cell_text(left)), esc(cell_text(right)), esc(sum_text(left, right))]
 
 
 def readers_table(results: StudyResults, sites: Sequence[str], rows: list[MetricRow]) -> str:
