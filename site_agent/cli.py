@@ -28,6 +28,7 @@ from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import InputError, SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
+from site_agent.site_output import site_evaluation_output
 from site_agent.statistics.metrics import MetricsSummary, summarize
 
 site_app = typer.Typer(
@@ -56,7 +57,15 @@ def evaluate_command(
         ),
     ],
     as_json: Annotated[
-        bool, typer.Option("--json", help="Print the release JSON exactly as it would be sent.")
+        bool,
+        typer.Option(
+            "--json",
+            help=(
+                "Print JSON: 'leaves_the_site' (the release exactly as it would be sent, and "
+                "the policy's note), 'stays_at_site' (the derived metrics with intervals and "
+                "methods, not sent) and 'notice'."
+            ),
+        ),
     ] = False,
     protocol: Annotated[
         Path | None,
@@ -107,6 +116,7 @@ def evaluate_command(
         release = evaluate_site(
             table, plan, site=site or predictions.stem, protocol_hash=protocol_hash
         )
+        note = None
         if policy is not None:
             release, note = apply_policy(release, SitePolicy.load(policy))
             if not as_json:
@@ -116,7 +126,7 @@ def evaluate_command(
         typer.echo(f"error: {exc}", err=True)
         raise typer.Exit(code=2) from exc
     if as_json:
-        typer.echo(release.to_json())
+        typer.echo(site_evaluation_output(release, note).model_dump_json(indent=2))
         return
     _render(release, summary, Console(width=120))
 
@@ -138,6 +148,9 @@ def _scored_table(
 
 
 def _ci(e: EstimateRecord) -> str:
+    if e.estimate_low is not None and e.estimate_high is not None:
+        hull = "" if e.lower is None or e.upper is None else f" [{e.lower:.3f}, {e.upper:.3f}]"
+        return f"{e.estimate_low:.3f} to {e.estimate_high:.3f}{hull} (range: censored cell)"
     if e.estimate is None:
         return f"— ({e.reason})"
     if e.lower is None or e.upper is None:
@@ -186,7 +199,10 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
                 f"{t.threshold:g}", name, _ci(p.wilson), _ci(p.clustered), _ci(p.clopper_pearson)
             )
         table.add_row(f"{t.threshold:g}", "accuracy", _ci(t.accuracy), "", "")
-        table.add_row(f"{t.threshold:g}", "F1", _number(t.f1.value), "", "", end_section=True)
+        f1 = _number(t.f1.value)
+        if t.f1.low is not None and t.f1.high is not None:
+            f1 = f"{t.f1.low:.3f} to {t.f1.high:.3f} (range: censored cell)"
+        table.add_row(f"{t.threshold:g}", "F1", f1, "", "", end_section=True)
     console.print(table)
 
     exact = release.exact

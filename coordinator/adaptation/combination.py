@@ -28,6 +28,7 @@ from scipy import stats
 
 from site_agent.contract.adaptation_release import Performance
 from site_agent.contract.release import AucRecord
+from site_agent.statistics.censored import CensoredCount
 from site_agent.statistics.estimates import two_sided_z
 from site_agent.statistics.roc import hanley_mcneil_se
 
@@ -176,10 +177,8 @@ def metric_logit(perf: Performance, metric: str, threshold: float | None) -> tup
     for t in perf.at_thresholds:
         if t.threshold != threshold:
             continue
-        record = t.sensitivity if metric == "sensitivity" else t.specificity
-        if record.estimate is None:  # suppressed by the site's minimum cell size
-            return math.nan, math.nan
-        if metric == "sensitivity":
-            return proportion_logit(t.tp, t.tp + t.fn)
-        return proportion_logit(t.tn, t.tn + t.fp)
+        right, wrong = (t.tp, t.fn) if metric == "sensitivity" else (t.tn, t.fp)
+        if isinstance(right, CensoredCount) or isinstance(wrong, CensoredCount):
+            return math.nan, math.nan  # censored by the site's minimum cell size: left out
+        return proportion_logit(right, right + wrong)
     return math.nan, math.nan

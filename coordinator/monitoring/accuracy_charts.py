@@ -8,8 +8,8 @@ windows: the pooled proportion, and the inverse-variance weighted mean AUC, whos
 is added to each window's (Jones, Champ & Rigdon 2004 on estimated targets). Charts watch
 for a fall (``side="lower"``) and start after the baseline.
 
-A site's disclosure step may suppress a small confusion cell; :func:`usable_counts` then
-drops the proportion it corrupts for that window.
+A site's disclosure step may censor a small confusion cell; :func:`usable_counts` then
+drops the proportion resting on it for that window.
 
 References
 ----------
@@ -62,18 +62,14 @@ def confusion_at(release: SiteRelease, threshold: float | None) -> ConfusionCoun
 
 
 def usable_counts(c: ConfusionCounts, name: ProportionName) -> tuple[int, int]:
-    """Return (successes, trials), or (0, 0) if a disclosure step may have zeroed a cell.
+    """Return (successes, trials), or (0, 0) when a cell of the proportion is censored.
 
-    A site that suppresses a small confusion cell sets it to 0 and drops all four
-    proportions' patient moments; a genuine count has moments with at least one patient
-    per proportion that has trials. With moments dropped, a proportion is still usable
-    when neither of its cells is 0 (a suppressed cell reads 0).
+    A site's disclosure step marks a small confusion cell and its class partner censored
+    (:class:`~site_agent.statistics.censored.CensoredCount`); the window then gives no
+    count for that proportion, and the chart skips it rather than read a guess.
     """
-    successes, trials = c.counts(name)
-    moments = getattr(c, name)
-    if trials > 0 and moments.clusters == 0 and (successes == 0 or successes == trials):
-        return 0, 0
-    return successes, trials
+    counts = c.counts(name)
+    return (0, 0) if counts is None else counts
 
 
 def chart_site(

@@ -5,12 +5,14 @@ first threshold are pooled by REML with the Hartung-Knapp-Sidik-Jonkman interval
 primary analysis), DerSimonian-Laird and the fixed-effect model
 (:func:`~coordinator.pooling.meta_analysis.meta_analyze`); groups of sites that share a
 site attribute (role, scanner vendor, ...) get their own REML AUC. Values are reported
-on the measure's own scale (back-transformed).
+on the measure's own scale (back-transformed). A site whose confusion cells for a measure
+are censored by its minimum-cell rule is left out of that measure, and the note says so.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import replace
 
 from coordinator.pooling.effect_sizes import (
     EffectSizes,
@@ -24,6 +26,7 @@ from coordinator.pooling.sites import SiteInfo, nan_if_none
 from coordinator.pooling.study_results import MetaRow
 from site_agent.contract.release import SiteRelease
 from site_agent.exceptions import InputError
+from site_agent.statistics.censored import CensoredCount
 
 META_METHODS: tuple[tuple[str, bool], ...] = (("reml", True), ("dl", False), ("fixed", False))
 """Meta-analyses run for every metric: REML with HKSJ (primary), DerSimonian-Laird, fixed."""
@@ -38,25 +41,59 @@ def meta_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetaRo
         ses = [nan_if_none(r.exact.auc.se) for r in usable]
         rows += _meta("auc", logit_auc(aucs, ses), [r.site for r in usable], confidence)
     with_counts = [r for r in releases if r.statistics.confusion]
-    if len(with_counts) >= 2:
-        first = [r.statistics.confusion[0] for r in with_counts]
-        labels = [r.site for r in with_counts]
-        tp, fp, fn, tn = ([getattr(c, cell) for c in first] for cell in ("tp", "fp", "fn", "tn"))
-        threshold = first[0].threshold
-        sized: list[tuple[str, Callable[[], EffectSizes]]] = [
-            (f"sensitivity@{threshold:g}", lambda: logit_sensitivity(tp, fn)),
-            (f"specificity@{threshold:g}", lambda: logit_specificity(tn, fp)),
+    if with_counts:
+        threshold = with_counts[0].statistics.confusion[0].threshold
+        measures: tuple[tuple[str, tuple[str, ...], _Effect], ...] = (
+            (f"sensitivity@{threshold:g}", ("tp", "fn"), lambda c: logit_sensitivity(*c)),
+            (f"specificity@{threshold:g}", ("tn", "fp"), lambda c: logit_specificity(*c)),
             (
                 f"diagnostic odds ratio@{threshold:g}",
-                lambda: log_diagnostic_odds_ratio(tp, fp, fn, tn),
+                ("tp", "fp", "fn", "tn"),
+                lambda c: log_diagnostic_odds_ratio(*c),
             ),
-        ]
-        for metric, effect in sized:
-            try:
-                rows += _meta(metric, effect(), labels, confidence)
-            except InputError:
-                continue  # a class absent at some site: the measure is undefined there
+        )
+        for metric, cells, effect in measures:
+            rows += _count_meta(metric, cells, effect, with_counts, confidence)
     return rows
+
+
+_Effect = Callable[[list[list[int]]], EffectSizes]
+
+
+def _count_meta(
+    metric: str,
+    cells: tuple[str, ...],
+    effect: _Effect,
+    releases: Sequence[SiteRelease],
+    confidence: float,
+) -> list[MetaRow]:
+    """Meta-analyse one count measure at the first threshold over the sites that have it.
+
+    A site whose cells for the measure are censored by its minimum-cell rule is left out
+    (its counts are not known) and named in the rows' note; fewer than two sites left
+    gives no rows.
+    """
+    counts: list[list[int]] = [[] for _ in cells]
+    labels, left_out = [], []
+    for r in releases:
+        c = r.statistics.confusion[0]
+        values = [getattr(c, cell) for cell in cells]
+        if any(isinstance(v, CensoredCount) for v in values):
+            left_out.append(r.site)
+            continue
+        labels.append(r.site)
+        for column, v in zip(counts, values, strict=True):
+            column.append(v)
+    if len(labels) < 2:
+        return []
+    try:
+        sizes = effect(counts)
+    except InputError:
+        return []  # a class absent at some site: the measure is undefined there
+    if left_out:
+        note = f"left out, cells censored by the site's minimum cell size: {', '.join(left_out)}"
+        sizes = replace(sizes, notes=(*sizes.notes, note))
+    return _meta(metric, sizes, labels, confidence)
 
 
 def site_subgroup_meta(

@@ -51,6 +51,8 @@ def estimate_row(
         threshold=threshold,
         n=record.n,
         reason=record.reason,
+        estimate_low=record.estimate_low,
+        estimate_high=record.estimate_high,
     )
 
 
@@ -85,7 +87,8 @@ def summary_rows(site: str, summary: MetricsSummary) -> list[MetricRow]:
         for name in ("sensitivity", "specificity", "ppv", "npv"):
             rows += _proportion_rows(site, name, getattr(t, name), t.threshold)
         rows.append(estimate_row(site, "accuracy", t.accuracy, threshold=t.threshold))
-        rows.append(_scalar(site, "f1", t.f1.value, t.f1.n, t.f1.reason, threshold=t.threshold))
+        f1 = _scalar(site, "f1", t.f1.value, t.f1.n, t.f1.reason, threshold=t.threshold)
+        rows.append(f1.model_copy(update={"estimate_low": t.f1.low, "estimate_high": t.f1.high}))
     rows.append(
         MetricRow(
             site=site,

@@ -15,6 +15,7 @@ from typing import Annotated, Any
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
 
 from site_agent.notices import RESEARCH_NOTICE
+from site_agent.statistics.censored import CensoredCount
 
 
 def _none_is_nan(value: Any) -> Any:
@@ -47,6 +48,14 @@ class MetricRow(_Record):
     bound: float | None = Field(
         default=None, description="Histogram AUC only: largest possible binning error."
     )
+    estimate_low: float | None = Field(
+        default=None,
+        description="Resting on a censored cell: smallest value the estimate can take "
+        "(the estimate is then undefined and lower/upper are the hull of the intervals).",
+    )
+    estimate_high: float | None = Field(
+        default=None, description="Resting on a censored cell: largest value it can take."
+    )
 
 
 class CurvePoints(_Record):
@@ -64,10 +73,11 @@ class TwoByTwo(_Record):
 
     site: str
     threshold: float
-    tp: int
-    fp: int
-    fn: int
-    tn: int
+    tp: int | CensoredCount
+    fp: int | CensoredCount
+    fn: int | CensoredCount
+    tn: int | CensoredCount
+    """A cell a site's policy suppressed is a :class:`CensoredCount` (a range), never 0."""
 
 
 class ParticipantFlow(_Record):

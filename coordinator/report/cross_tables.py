@@ -12,20 +12,23 @@ from collections.abc import Sequence
 
 from coordinator.pooling.study_results import MetricRow, StudyResults
 from coordinator.report.html_parts import esc, estimate_cell, html_table, site_label, slug
+from site_agent.statistics.censored import Cell, cell_text, class_total, is_censored, sum_text
 
 
 def two_by_two_section(results: StudyResults) -> str:
     """Return the 2×2 tables, one card per site and threshold."""
     if not results.two_by_two:
         return "<p>No cross tabulations were released.</p>"
-    cards, seen = [], dict[str, int]()
+    cards, seen, censored = [], dict[str, int](), False
     for t in results.two_by_two:
         index = seen[t.site] = seen.get(t.site, 0) + 1
+        positives, negatives = class_total(t.tp, t.fn), class_total(t.fp, t.tn)
         rows = [
-            ["Index test positive", str(t.tp), str(t.fp), str(t.tp + t.fp)],
-            ["Index test negative", str(t.fn), str(t.tn), str(t.fn + t.tn)],
-            ["Total", str(t.tp + t.fn), str(t.fp + t.tn), str(t.tp + t.fp + t.fn + t.tn)],
+            ["Index test positive", *_cells(t.tp, t.fp)],
+            ["Index test negative", *_cells(t.fn, t.tn)],
+            ["Total", str(positives), str(negatives), str(positives + negatives)],
         ]
+        censored = censored or is_censored(t.tp, t.fp, t.fn, t.tn)
         cards.append(
             html_table(
                 f"table-2x2-{slug(t.site)}-{index}",
@@ -34,11 +37,23 @@ def two_by_two_section(results: StudyResults) -> str:
                 rows,
             )
         )
+    legend = (
+        " A cell shown as &lt;m was below the site's minimum cell size m and was not "
+        "released; its class partner is shown as the range it can be. Pooled cells that "
+        "include such a cell are ranges."
+        if censored
+        else ""
+    )
     return (
         '<p class="small">Index test result (model score at or above the threshold) by '
-        "reference standard, per site and threshold (STARD 2015 item 23).</p>"
+        f"reference standard, per site and threshold (STARD 2015 item 23).{legend}</p>"
         f'<div class="cards">{"".join(cards)}</div>'
     )
+
+
+def _cells(left: Cell, right: Cell) -> list[str]:
+    """Return one row's two cells and their sum, escaped: a censored cell reads ``<m``."""
+    return [esc(cell_text(left)), esc(cell_text(right)), esc(sum_text(left, right))]
 
 
 def readers_table(results: StudyResults, sites: Sequence[str], rows: list[MetricRow]) -> str:

@@ -18,8 +18,8 @@ from coordinator.pooling.study_results import (
     MetricRow,
     ParticipantFlow,
     StudyResults,
-    TwoByTwo,
 )
+from site_agent.statistics.censored import cell_range, class_total, is_censored
 
 HEADLINE_AUC_METHOD = "delong"
 """Interval method of the AUC shown in summaries when a site released several."""
@@ -85,10 +85,26 @@ def meta_frame(results: StudyResults) -> pd.DataFrame:
 
 
 def two_by_two_frame(results: StudyResults) -> pd.DataFrame:
-    """Return the 2x2 tables, one per site and threshold, with the total ``n``."""
-    frame = _frame(results.two_by_two, TwoByTwo)
-    frame["n"] = frame[["tp", "fp", "fn", "tn"]].sum(axis=1).astype(int)
-    return frame
+    """Return the 2x2 tables, one per site and threshold, with the total ``n``.
+
+    Each cell has its count (empty when censored) and the range it can be
+    (``tp_low``, ``tp_high``; equal to the count when it is exact).
+    """
+    records: list[dict[str, Any]] = []
+    for t in results.two_by_two:
+        record: dict[str, Any] = {"site": t.site, "threshold": t.threshold}
+        for name in ("tp", "fp", "fn", "tn"):
+            cell = getattr(t, name)
+            low, high = cell_range(cell)
+            record[name] = None if is_censored(cell) else low
+            record[f"{name}_low"], record[f"{name}_high"] = low, high
+        record["n"] = class_total(t.tp, t.fn) + class_total(t.fp, t.tn)
+        records.append(record)
+    columns = ["site", "threshold", "tp", "fp", "fn", "tn"]
+    columns += [f"{c}_{end}" for c in ("tp", "fp", "fn", "tn") for end in ("low", "high")]
+    return pd.DataFrame.from_records(records, columns=[*columns, "n"]).astype(
+        {c: "Int64" for c in ("tp", "fp", "fn", "tn")}
+    )
 
 
 def flow_frame(results: StudyResults) -> pd.DataFrame:

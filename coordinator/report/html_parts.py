@@ -101,11 +101,29 @@ def estimate_cell(row: MetricRow | None) -> str:
     """Return the inner HTML of a table cell: estimate (95% CI), or a dash and the reason."""
     if row is None:
         return f'{DASH} <span class="reason">not available</span>'
+    if row.estimate_low is not None and row.estimate_high is not None:
+        return censored_text(row)
     if not math.isfinite(row.estimate):
         return f'{DASH} <span class="reason">{esc(row.reason or "undefined")}</span>'
     ci = interval_text(row.metric, row.lower, row.upper)
     ci_html = f' <span class="ci">({ci})</span>' if ci else ""
     return f"{num(row.metric, row.estimate)}{ci_html}"
+
+
+def censored_text(row: MetricRow) -> str:
+    """Return a metric resting on a censored cell: the range of values it can take.
+
+    The interval shown is the hull of the intervals over that range, so it contains every
+    interval the suppressed counts could have given.
+    """
+    low, high = row.estimate_low, row.estimate_high
+    assert low is not None and high is not None  # the caller checked
+    ci = interval_text(row.metric, row.lower, row.upper)
+    ci_html = f' <span class="ci">({ci})</span>' if ci else ""
+    return (
+        f"{num(row.metric, low)} to {num(row.metric, high)}{ci_html} "
+        '<span class="reason">range: a cell below the site\'s minimum cell size</span>'
+    )
 
 
 def pvalue_text(p: float) -> str:

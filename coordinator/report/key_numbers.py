@@ -1,4 +1,4 @@
-"""The head of the study report: study facts, the findings paragraph and the key numbers.
+"""The head of the study report: study facts, the findings list and the key numbers.
 
 The key numbers are read from the result rows (per-site AUC by role, the primary
 random-effects AUC with its prediction interval and heterogeneity, the one-cohort AUC,
@@ -11,6 +11,7 @@ import math
 
 from coordinator.pooling.study_results import StudyResults
 from coordinator.report.exports import headline_auc
+from coordinator.report.findings_list import findings_section
 from coordinator.report.html_parts import (
     POOLED,
     esc,
@@ -47,8 +48,8 @@ def _i2_words(i2: float) -> str:
 
 
 def summary_section(results: StudyResults) -> str:
-    """Return the findings paragraph and a short list of key numbers derived from the rows."""
-    findings = " ".join(esc(f) for f in results.findings) or "No findings were recorded."
+    """Return the findings list and a short list of key numbers derived from the rows."""
+    findings = findings_section(results)
     items: list[tuple[str, str]] = []
     for role in ("development", "external"):
         aucs = [
@@ -93,6 +94,6 @@ def summary_section(results: StudyResults) -> str:
     if missing:
         items.append(("Did not release", esc(", ".join(missing))))
     listed = "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in items)
-    return f'<p class="summary">{findings}</p>' + (
+    return f'<div class="summary">{findings}</div>' + (
         f'<h3>Key numbers</h3><dl class="meta" id="key-numbers">{listed}</dl>' if items else ""
     )

@@ -126,9 +126,27 @@ def forest_section(results: StudyResults) -> str:
                 else ""
             )
             + " Other pooling methods are in the heterogeneity table."
+            + _censored_caption(sites, cohort_row)
         )
         out.append(html_figure(f"fig-forest-{slug(full_name)}", svg, caption))
     return "".join(out)
+
+
+def _censored_caption(sites: list[MetricRow], cohort: MetricRow | None) -> str:
+    """Say which rows rest on a censored cell: no square, and the cohort bar is a hull."""
+    left_out = [r.site for r in sites if r.estimate_low is not None]
+    text = ""
+    if left_out:
+        text += (
+            " No square (a cell below the site's minimum cell size; the range is in the "
+            f"accuracy table, and the meta-analysis left the site out): {', '.join(left_out)}."
+        )
+    if cohort is not None and cohort.estimate_low is not None:
+        text += (
+            " The one-cohort bar rests on such a cell: it has no point and spans the "
+            "intervals over every count the released cells allow."
+        )
+    return esc(text)
 
 
 def _forest_label(results: StudyResults, site: str) -> str:

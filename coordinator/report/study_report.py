@@ -45,6 +45,8 @@ border-radius:6px;font-weight:600;margin:16px 0}
 .meta{display:grid;grid-template-columns:max-content 1fr;gap:2px 16px;font-size:.92em}
 .meta dt{color:#555}.meta dd{margin:0}code{font-size:.9em;word-break:break-all}
 .summary{font-size:1.05em;background:#f5f8fc;border-left:4px solid #1f77b4;padding:10px 16px}
+.findings{margin:4px 0 8px;padding-left:20px}.findings li{margin:3px 0}
+details summary{cursor:pointer;color:#444;font-size:.92em}
 nav ol{columns:2;font-size:.92em}
 table{border-collapse:collapse;margin:8px 0 16px;font-size:.82em}
 caption{text-align:left;font-weight:600;padding:4px 0;color:#333}

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import math
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, NonNegativeInt
 
 from site_agent.contract.release import (
     SITE_NAME_PATTERN,
@@ -30,6 +30,7 @@ from site_agent.contract.release import (
     EstimateRecord,
     finite_or_none,
 )
+from site_agent.statistics.censored import CensoredCount
 from site_agent.statistics.roc import AucDifference
 
 MAX_POINTS = 2_000
@@ -45,12 +46,13 @@ class ThresholdPerformance(_Record):
     """Confusion counts at one threshold, with Wilson sensitivity and specificity."""
 
     threshold: float = Field(ge=0.0, le=1.0)
-    tp: int = Field(ge=0)
-    fp: int = Field(ge=0)
-    fn: int = Field(ge=0)
-    tn: int = Field(ge=0)
+    tp: NonNegativeInt | CensoredCount
+    fp: NonNegativeInt | CensoredCount
+    fn: NonNegativeInt | CensoredCount
+    tn: NonNegativeInt | CensoredCount
     sensitivity: EstimateRecord
     specificity: EstimateRecord
+    """Wilson; with a censored cell, estimate None and the hull over the censored range."""
 
 
 class Performance(_Record):

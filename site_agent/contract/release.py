@@ -18,6 +18,7 @@ import math
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from site_agent.exceptions import InputError
+from site_agent.statistics.censored import CENSORED_REASON, ProportionHull
 from site_agent.statistics.estimates import Estimate
 from site_agent.statistics.roc import AucDifference, AucEstimate
 from site_agent.statistics.summaries import SufficientStatistics
@@ -64,6 +65,39 @@ class EstimateRecord(_Record):
     n: int = Field(ge=0)
     confidence: float = Field(gt=0.0, lt=1.0)
     reason: str | None = None
+    estimate_low: float | None = None
+    estimate_high: float | None = None
+    """With a censored cell: the smallest and largest value the estimate can take (the
+    estimate is then None and ``lower``/``upper`` are the hull of the intervals)."""
+
+    @classmethod
+    def of_hull(
+        cls, hull: ProportionHull | None, *, method: str, n: int, confidence: float
+    ) -> EstimateRecord:
+        """Return a metric resting on a censored cell: its hull, or not released at all."""
+        if hull is None:
+            return cls(
+                estimate=None,
+                lower=None,
+                upper=None,
+                se=None,
+                method=method,
+                n=n,
+                confidence=confidence,
+                reason=CENSORED_REASON,
+            )
+        return cls(
+            estimate=None,
+            lower=hull.lower,
+            upper=hull.upper,
+            se=None,
+            method=hull.method,
+            n=n,
+            confidence=confidence,
+            reason=CENSORED_REASON,
+            estimate_low=hull.estimate_low,
+            estimate_high=hull.estimate_high,
+        )
 
     @classmethod
     def of(cls, e: Estimate) -> EstimateRecord:

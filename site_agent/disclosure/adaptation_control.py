@@ -3,20 +3,29 @@
 :func:`control_adaptation` applies the site's minimum cell size to an
 :class:`~site_agent.contract.adaptation_release.AdaptationRelease`: it refuses a release
 whose test-set totals are small and suppresses small confusion cells with their partners in
-the same class (their counts become 0 and the sensitivity and specificity that rest on them
-are withheld). The gate (:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on
-every ``fine_tune`` reply before the release leaves.
+the same class (they are marked censored, never 0, and the sensitivity and specificity that
+rest on them become the hull over the censored range). The gate
+(:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on every ``fine_tune`` reply
+before the release leaves.
 """
 
 from __future__ import annotations
 
-from site_agent.contract.adaptation_release import AdaptationRelease, Performance
+from site_agent.contract.adaptation_release import (
+    AdaptationRelease,
+    Performance,
+    ThresholdPerformance,
+)
 from site_agent.contract.release import EstimateRecord
-from site_agent.disclosure.policy import SitePolicy, suppressed_confusion_cells
+from site_agent.disclosure.policy import (
+    SitePolicy,
+    censored_cells,
+    exact_cells,
+    suppressed_confusion_cells,
+)
 from site_agent.disclosure.refusals import RefusalCode, refusal
-
-SUPPRESSED = "withheld: a confusion cell is below the site's minimum cell size"
-"""Reason on a sensitivity or specificity withheld with its suppressed cells."""
+from site_agent.statistics.censored import Cell, cells_hull, is_censored
+from site_agent.statistics.proportions import wilson
 
 
 def control_adaptation(
@@ -27,7 +36,8 @@ def control_adaptation(
     A count is releasable when it is 0 or at least ``min_cell`` (common practice in
     statistical disclosure control). Test-set totals and the pool size must be releasable;
     small confusion cells and their partners in the same class (the class totals are
-    released) are set to 0, and their sensitivity and specificity withheld.
+    released) are marked censored, and their sensitivity and specificity become the hull
+    of the Wilson intervals over the censored range.
 
     Raises
     ------
@@ -55,25 +65,27 @@ def _ok(value: int, min_cell: int) -> bool:
 def _controlled(perf: Performance, m: int, path: str, suppressed: list[str]) -> Performance:
     rows = []
     for i, t in enumerate(perf.at_thresholds):
-        cells = {"tp": t.tp, "fp": t.fp, "fn": t.fn, "tn": t.tn}
+        cells = exact_cells(t)
         small = suppressed_confusion_cells(cells, m)
         if not small:
             rows.append(t)
             continue
         suppressed.extend(f"{path}.at_thresholds[{i}].{k}" for k in small)
+        marked = censored_cells(cells, small, m)
         rows.append(
-            t.model_copy(
-                update={
-                    **{k: 0 for k in small},
-                    "sensitivity": _withheld(t.sensitivity),
-                    "specificity": _withheld(t.specificity),
-                }
+            ThresholdPerformance(
+                threshold=t.threshold,
+                **marked,
+                sensitivity=_hull(t.sensitivity, marked["tp"], marked["fn"]),
+                specificity=_hull(t.specificity, marked["tn"], marked["fp"]),
             )
         )
     return perf.model_copy(update={"at_thresholds": tuple(rows)})
 
 
-def _withheld(e: EstimateRecord) -> EstimateRecord:
-    return e.model_copy(
-        update={"estimate": None, "lower": None, "upper": None, "se": None, "reason": SUPPRESSED}
-    )
+def _hull(e: EstimateRecord, successes: Cell, failures: Cell) -> EstimateRecord:
+    """Return a Wilson proportion as the censored cells allow (unchanged if neither is)."""
+    if not is_censored(successes, failures):
+        return e
+    hull = cells_hull(successes, failures, wilson, e.confidence)
+    return EstimateRecord.of_hull(hull, method=e.method, n=e.n, confidence=e.confidence)

@@ -26,15 +26,18 @@ from __future__ import annotations
 
 import json
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from site_agent.contract.adaptation_release import ThresholdPerformance
 from site_agent.contract.protocol import Operation, UpdateNoise
 from site_agent.exceptions import InputError
+from site_agent.statistics.censored import Cell, CensoredCount, censor_pair
+from site_agent.statistics.summaries import ConfusionCounts
 
 # Smallest count a site releases for any cell, bin or subgroup. Thresholds between 3 and
 # 11 are common practice in statistical disclosure control of health tables; 5 is a
@@ -186,7 +189,7 @@ _CLASS_PARTNER = {"tp": "fn", "fn": "tp", "fp": "tn", "tn": "fp"}
 
 
 def suppressed_confusion_cells(cells: Mapping[str, int], min_cell: int) -> tuple[str, ...]:
-    """Return the confusion cells (``tp``, ``fp``, ``fn``, ``tn``) that must be set to 0.
+    """Return the confusion cells (``tp``, ``fp``, ``fn``, ``tn``) that must be suppressed.
 
     Each small cell (1 to ``min_cell`` − 1) goes, and so does its partner in the same class
     (``tp`` with ``fn``, ``fp`` with ``tn``): the class totals are released beside the
@@ -196,6 +199,39 @@ def suppressed_confusion_cells(cells: Mapping[str, int], min_cell: int) -> tuple
     small = {k for k, v in cells.items() if 0 < v < min_cell}
     small |= {_CLASS_PARTNER[k] for k in small}
     return tuple(k for k in cells if k in small)
+
+
+def exact_cells(c: ConfusionCounts | ThresholdPerformance) -> dict[str, int]:
+    """Return the four confusion cells of a release not yet controlled (all exact).
+
+    Raises
+    ------
+    InputError
+        When a cell is already censored (the control runs once, on exact counts).
+    """
+    cells = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
+    exact = {k: v for k, v in cells.items() if not isinstance(v, CensoredCount)}
+    if len(exact) != len(cells):
+        raise InputError("confusion cells are already censored")
+    return exact
+
+
+def censored_cells(
+    cells: Mapping[str, int], small: Sequence[str], min_cell: int
+) -> dict[str, Cell]:
+    """Return the cells with each suppressed one (``small``) marked censored, never 0.
+
+    Each suppressed class pair becomes two :class:`CensoredCount` (what is known: the small
+    cell lies in 1..m−1; the class total), see
+    :func:`site_agent.statistics.censored.censor_pair`.
+    """
+    out: dict[str, Cell] = dict(cells)
+    for a, b in (("tp", "fn"), ("fp", "tn")):
+        if a not in small:
+            continue
+        primary, partner = (a, b) if 0 < cells[a] < min_cell else (b, a)
+        out[primary], out[partner] = censor_pair(cells[primary], cells[partner], min_cell)
+    return out
 
 
 def policy_json_schema() -> dict[str, Any]:

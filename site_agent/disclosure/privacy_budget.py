@@ -33,7 +33,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from site_agent.contract.release import AucRecord, CalibrationRecord, EstimateRecord, SiteRelease
-from site_agent.disclosure.policy import PrivacySettings
+from site_agent.disclosure.policy import PrivacySettings, exact_cells
 from site_agent.exceptions import InputError
 from site_agent.statistics.summaries import (
     CalibrationBins,
@@ -244,7 +244,7 @@ def noised_release(release: SiteRelease, epsilon: float) -> NoisedRelease:
 def _int_fields(s: SufficientStatistics) -> list[int]:
     out = [s.n_observations, s.n_positive, s.n_negative, s.n_pending, s.n_patients]
     for c in s.confusion:
-        out.extend((c.tp, c.fp, c.fn, c.tn))
+        out.extend(exact_cells(c).values())  # noise comes first, on exact counts
     out.extend((*s.histogram.positive, *s.histogram.negative, *s.histogram.all))
     out.extend((*s.calibration.count, *s.calibration.label_sum))
     for t in s.agreement:

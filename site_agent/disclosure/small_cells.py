@@ -20,9 +20,12 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    totals of any two levels must not differ by a small number: if one level nests in the
    other, the difference isolates that many cases. Counts cannot tell nesting apart, so
    the rule is applied to every cross-attribute pair.
-5. Small cells: confusion cells and agreement cells are suppressed (set to 0, listed in
-   the note; the threshold's patient moments are dropped with them). A small confusion
-   cell takes its partner in the same class with it (class totals are released). Histogram
+5. Small cells: a small confusion cell and its partner in the same class (class totals
+   are released) are marked censored, with the range each can be and the class total
+   (:class:`~site_agent.statistics.censored.CensoredCount`, never a count); the
+   threshold's patient moments are dropped with them. Agreement cells are suppressed
+   (set to 0, listed in the note, the table marked ``censored`` so that no kappa is
+   derived from it). Histogram
    and calibration bins are suppressed, with further bins until no row's suppressed sum is
    small, or merged with their neighbours until every row of every bin is 0 or at least
    ``m`` (the new edges are a subset of the old).
@@ -54,7 +57,13 @@ from typing import Any
 from pydantic import BaseModel, ConfigDict
 
 from site_agent.contract.release import POOLED_LEVELS, AttributeCounts, SiteRelease
-from site_agent.disclosure.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
+from site_agent.disclosure.policy import (
+    SitePolicy,
+    SmallCellAction,
+    censored_cells,
+    exact_cells,
+    suppressed_confusion_cells,
+)
 from site_agent.disclosure.privacy_budget import noised_release
 from site_agent.disclosure.refusals import RefusalCode, refusal
 from site_agent.statistics.summaries import (
@@ -75,7 +84,8 @@ class DisclosureNote(BaseModel):
     min_cell: int
     small_cells: SmallCellAction
     suppressed: tuple[str, ...] = ()
-    """Cells set to 0 because they were small (paths into the release)."""
+    """Cells suppressed because they were small (paths into the release): confusion cells
+    are marked censored, other cells set to 0."""
     merged: tuple[str, ...] = ()
     """Histograms whose adjacent bins were merged (their edges changed)."""
     withheld: tuple[str, ...] = ()
@@ -259,7 +269,7 @@ def _controlled(
 
 
 def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionCounts:
-    cells = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
+    cells = exact_cells(c)
     small = suppressed_confusion_cells(cells, m)
     if not small:
         return c
@@ -268,7 +278,7 @@ def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionC
     empty = PatientMoments()
     return ConfusionCounts(
         threshold=c.threshold,
-        **{k: 0 if k in small else v for k, v in cells.items()},
+        **censored_cells(cells, small, m),
         sensitivity=empty,
         specificity=empty,
         ppv=empty,
@@ -285,7 +295,7 @@ def _agreement(t: AgreementTable, m: int, path: str, note: _Note) -> AgreementTa
         tuple(0 if (i, j) in cells else v for j, v in enumerate(row))
         for i, row in enumerate(t.counts)
     )
-    return t.model_copy(update={"counts": counts})
+    return t.model_copy(update={"counts": counts, "censored": True})
 
 
 def _groups(rows: Sequence[Sequence[int]], m: int) -> list[tuple[int, int]]:

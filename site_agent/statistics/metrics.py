@@ -6,11 +6,16 @@ with three intervals each (Wilson, Clopper–Pearson, cluster-robust over patien
 accuracy, F1 and prevalence; the histogram AUC with its binning-error bound and ROC
 points; Brier score and expected calibration error; Cohen's kappas for every agreement
 table. A metric undefined on the data is ``None`` with a ``reason``; JSON never holds NaN.
+A metric resting on a censored confusion cell (:mod:`site_agent.statistics.censored`) has
+no point value: it carries the range of its values and the hull of its intervals over
+every count the released cells allow, or is not released; the clustered interval, whose
+patient moments leave with the cell, is not released.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -18,6 +23,14 @@ from site_agent.contract.release import EstimateRecord, finite_or_none
 from site_agent.exceptions import InputError
 from site_agent.statistics.agreement import cohen_kappa
 from site_agent.statistics.calibration import expected_calibration_error
+from site_agent.statistics.censored import (
+    CENSORED_REASON,
+    Cell,
+    CensoredCount,
+    cell_range,
+    cells_hull,
+    class_total,
+)
 from site_agent.statistics.estimates import Estimate
 from site_agent.statistics.proportions import (
     clopper_pearson,
@@ -35,6 +48,10 @@ from site_agent.statistics.summaries import (
 )
 
 DEFAULT_CONFIDENCE = 0.95
+AGREEMENT_CENSORED_REASON = (
+    "not released: site policy (an agreement cell is below the minimum cell size)"
+)
+"""Reason beside a kappa whose agreement table has suppressed cells."""
 
 
 class _Summary(BaseModel):
@@ -44,8 +61,9 @@ class _Summary(BaseModel):
 class ProportionMetrics(_Summary):
     """One proportion (e.g. sensitivity) with its Wilson, exact and clustered intervals."""
 
-    successes: int
-    total: int
+    successes: int | None
+    """None when a cell of the proportion is censored (the intervals are then hulls)."""
+    total: int | None
     wilson: EstimateRecord
     clopper_pearson: EstimateRecord
     clustered: EstimateRecord
@@ -58,16 +76,19 @@ class ScalarMetric(_Summary):
     value: float | None
     n: int
     reason: str | None = None
+    low: float | None = None
+    high: float | None = None
+    """With a censored cell: the smallest and largest value (``value`` is then None)."""
 
 
 class ThresholdMetrics(_Summary):
     """Classification metrics at one threshold (a case is called positive if score ≥ it)."""
 
     threshold: float
-    tp: int
-    fp: int
-    fn: int
-    tn: int
+    tp: Cell
+    fp: Cell
+    fn: Cell
+    tn: Cell
     sensitivity: ProportionMetrics
     specificity: ProportionMetrics
     ppv: ProportionMetrics
@@ -162,6 +183,7 @@ def summarize(
     using Bayesian binning. Proc. AAAI 2015:2901–2907 (ECE).
     Cohen J (1960, 1968); Fleiss JL, Cohen J, Everitt BS (1969), see
     :func:`site_agent.statistics.agreement.cohen_kappa`.
+    Censored cells: see :mod:`site_agent.statistics.censored`.
     """
     s = statistics
     labelled = s.n_positive + s.n_negative
@@ -200,7 +222,20 @@ def summarize(
 def _proportion(
     counts: ConfusionCounts, name: ProportionName, confidence: float
 ) -> ProportionMetrics:
-    successes, total = counts.counts(name)
+    exact = counts.counts(name)
+    if exact is None:
+        return _censored_proportion(counts, name, confidence)
+    successes, total = exact
+    if counts.censored:  # the threshold's patient moments left with its censored cells
+        return ProportionMetrics(
+            successes=successes,
+            total=total,
+            wilson=EstimateRecord.of(wilson(successes, total, confidence)),
+            clopper_pearson=EstimateRecord.of(clopper_pearson(successes, total, confidence)),
+            clustered=EstimateRecord.of_hull(
+                None, method="cluster-ratio", n=total, confidence=confidence
+            ),
+        )
     mo = counts.moments(name)
     try:
         clustered = clustered_proportion_from_moments(
@@ -220,23 +255,78 @@ def _proportion(
     )
 
 
-def _threshold_metrics(c: ConfusionCounts, confidence: float) -> ThresholdMetrics:
-    n = c.tp + c.fp + c.fn + c.tn
-    # F1 = 2·TP / (2·TP + FP + FN), the harmonic mean of PPV and sensitivity (common practice).
-    f1_denominator = 2 * c.tp + c.fp + c.fn
-    f1 = (
-        ScalarMetric(value=2 * c.tp / f1_denominator, n=n)
-        if f1_denominator
-        else ScalarMetric(value=None, n=n, reason="no positive cases and no positive calls")
+def _censored_proportion(
+    counts: ConfusionCounts, name: ProportionName, confidence: float
+) -> ProportionMetrics:
+    """Return a proportion resting on a censored cell: the hull over every count the cells allow.
+
+    The clustered interval needs the patient moments, which leave with the cell: it is
+    not released.
+    """
+    s, f = counts.cells(name)
+    n = cell_range(s)[0] + cell_range(f)[0]
+
+    def record(interval: Callable[[int, int, float], Estimate], method: str) -> EstimateRecord:
+        hull = cells_hull(s, f, interval, confidence)
+        return EstimateRecord.of_hull(hull, method=method, n=n, confidence=confidence)
+
+    return ProportionMetrics(
+        successes=None,
+        total=None,
+        wilson=record(wilson, "wilson"),
+        clopper_pearson=record(clopper_pearson, "clopper-pearson"),
+        clustered=EstimateRecord.of_hull(None, method="cluster-ratio", n=n, confidence=confidence),
     )
+
+
+def _accuracy(c: ConfusionCounts, confidence: float) -> EstimateRecord:
+    """Accuracy (TP + TN) / N with its Wilson interval; the hull if a cell is censored."""
+    (tp_lo, tp_hi), (tn_lo, tn_hi) = cell_range(c.tp), cell_range(c.tn)
+    (fp_lo, _), (fn_lo, _) = cell_range(c.fp), cell_range(c.fn)
+    if not c.censored:
+        n = tp_lo + tn_lo + fp_lo + fn_lo
+        return EstimateRecord.of(wilson(tp_lo + tn_lo, n, confidence))
+    n = class_total(c.tp, c.fn) + class_total(c.tn, c.fp)
+    right = CensoredCount(low=tp_lo + tn_lo, high=tp_hi + tn_hi, class_total=n)
+    wrong = CensoredCount(low=n - right.high, high=n - right.low, class_total=n)
+    hull = cells_hull(right, wrong, wilson, confidence)
+    return EstimateRecord.of_hull(hull, method="wilson", n=n, confidence=confidence)
+
+
+def _f1(c: ConfusionCounts) -> ScalarMetric:
+    """F1 = 2·TP / (2·TP + FP + FN), the harmonic mean of PPV and sensitivity (common practice).
+
+    With ``P = TP + FN`` (the positive class total) F1 = 2·TP / (TP + P + FP), which
+    increases with TP and decreases with FP: over censored cells its extremes lie at the
+    corners (smallest TP with largest FP, and the reverse).
+    """
+    positives = class_total(c.tp, c.fn)
+    (tp_lo, tp_hi), (fp_lo, fp_hi) = cell_range(c.tp), cell_range(c.fp)
+    n = positives + class_total(c.tn, c.fp)
+    if tp_hi + positives + fp_hi == 0:
+        return ScalarMetric(value=None, n=n, reason="no positive cases and no positive calls")
+    if not c.censored:
+        return ScalarMetric(value=2 * tp_lo / (tp_lo + positives + fp_lo), n=n)
+    if tp_lo + positives + fp_lo == 0:
+        return ScalarMetric(value=None, n=n, reason=CENSORED_REASON)
+    return ScalarMetric(
+        value=None,
+        n=n,
+        reason=CENSORED_REASON,
+        low=2 * tp_lo / (tp_lo + positives + fp_hi),
+        high=2 * tp_hi / (tp_hi + positives + fp_lo),
+    )
+
+
+def _threshold_metrics(c: ConfusionCounts, confidence: float) -> ThresholdMetrics:
     return ThresholdMetrics(
         threshold=c.threshold,
         tp=c.tp,
         fp=c.fp,
         fn=c.fn,
         tn=c.tn,
-        accuracy=EstimateRecord.of(wilson(c.tp + c.tn, n, confidence)),
-        f1=f1,
+        accuracy=_accuracy(c, confidence),
+        f1=_f1(c),
         sensitivity=_proportion(c, "sensitivity", confidence),
         specificity=_proportion(c, "specificity", confidence),
         ppv=_proportion(c, "ppv", confidence),
@@ -277,6 +367,19 @@ def _calibration_points(bins: CalibrationBins) -> tuple[CalibrationPoint, ...]:
 
 
 def _kappas(table: AgreementTable, confidence: float) -> KappaMetrics:
+    if table.censored:  # suppressed cells read 0 but are unknown: no kappa from them
+        withheld = EstimateRecord.of_hull(
+            None, method="cohen-kappa", n=table.n, confidence=confidence
+        ).model_copy(update={"reason": AGREEMENT_CENSORED_REASON})
+        return KappaMetrics(
+            raters=table.raters,
+            scale=table.scale,
+            categories=table.categories,
+            n=table.n,
+            unweighted=withheld,
+            linear=withheld.model_copy(update={"method": "cohen-kappa-linear"}),
+            quadratic=withheld.model_copy(update={"method": "cohen-kappa-quadratic"}),
+        )
     counts = table.matrix()
     return KappaMetrics(
         raters=table.raters,

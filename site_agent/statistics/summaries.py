@@ -37,6 +37,7 @@ from pydantic import BaseModel, ConfigDict, Field, NonNegativeInt, model_validat
 from site_agent.contract.protocol import EvaluationPlan, uniform_edges
 from site_agent.data.predictions import MISSING, Predictions
 from site_agent.exceptions import InputError
+from site_agent.statistics.censored import Cell, CensoredCount, is_censored, merge_pair
 from site_agent.statistics.proportions import ClusterMoments
 
 MAX_BINS = 1000
@@ -152,27 +153,59 @@ class ConfusionCounts(_Stat):
     """Confusion counts at one threshold, with per-patient moments of each proportion."""
 
     threshold: float = Field(ge=0.0, le=1.0)
-    tp: NonNegativeInt
-    fp: NonNegativeInt
-    fn: NonNegativeInt
-    tn: NonNegativeInt
+    tp: NonNegativeInt | CensoredCount
+    fp: NonNegativeInt | CensoredCount
+    fn: NonNegativeInt | CensoredCount
+    tn: NonNegativeInt | CensoredCount
     sensitivity: PatientMoments = Field(default_factory=PatientMoments)
     specificity: PatientMoments = Field(default_factory=PatientMoments)
     ppv: PatientMoments = Field(default_factory=PatientMoments)
     npv: PatientMoments = Field(default_factory=PatientMoments)
 
-    def counts(self, name: ProportionName) -> tuple[int, int]:
-        """Return (successes, trials) of a proportion: e.g. sensitivity is (tp, tp + fn)."""
+    @model_validator(mode="after")
+    def _censored_in_pairs(self) -> ConfusionCounts:
+        for a, b in ((self.tp, self.fn), (self.fp, self.tn)):
+            if is_censored(a) != is_censored(b):
+                raise ValueError("a censored confusion cell needs its class partner censored")
+            if isinstance(a, CensoredCount) and isinstance(b, CensoredCount):
+                total = a.class_total
+                if b.class_total != total or a.low + b.high != total or a.high + b.low != total:
+                    raise ValueError("censored partners must share their class total")
+        return self
+
+    @property
+    def censored(self) -> bool:
+        """Whether any cell is censored by a site's minimum-cell rule."""
+        return is_censored(self.tp, self.fp, self.fn, self.tn)
+
+    def cells(self, name: ProportionName) -> tuple[Cell, Cell]:
+        """Return the (successes, failures) cells of a proportion: sensitivity is (tp, fn)."""
         return {
-            "sensitivity": (self.tp, self.tp + self.fn),
-            "specificity": (self.tn, self.tn + self.fp),
-            "ppv": (self.tp, self.tp + self.fp),
-            "npv": (self.tn, self.tn + self.fn),
+            "sensitivity": (self.tp, self.fn),
+            "specificity": (self.tn, self.fp),
+            "ppv": (self.tp, self.fp),
+            "npv": (self.tn, self.fn),
         }[name]
 
+    def counts(self, name: ProportionName) -> tuple[int, int] | None:
+        """Return (successes, trials) of a proportion, or None when a cell of it is censored."""
+        successes, failures = self.cells(name)
+        if isinstance(successes, CensoredCount) or isinstance(failures, CensoredCount):
+            return None
+        return successes, successes + failures
+
     def moments(self, name: ProportionName) -> ClusterMoments:
-        """Return the full cluster moments of a proportion for the clustered interval."""
-        successes, total = self.counts(name)
+        """Return the full cluster moments of a proportion for the clustered interval.
+
+        Raises
+        ------
+        InputError
+            When a cell of the proportion is censored (its counts are not known).
+        """
+        counts = self.counts(name)
+        if counts is None:
+            raise InputError(f"{name} rests on a censored confusion cell")
+        successes, total = counts
         pm: PatientMoments = getattr(self, name)
         return ClusterMoments(
             successes, total, pm.clusters, float(pm.sum_a2), float(pm.sum_am), float(pm.sum_m2)
@@ -181,12 +214,14 @@ class ConfusionCounts(_Stat):
     def merge(self, other: ConfusionCounts) -> ConfusionCounts:
         """Return the counts of the union of two disjoint sets of cases."""
         _same("thresholds", self.threshold, other.threshold)
+        tp, fn = merge_pair(self.tp, self.fn, other.tp, other.fn)
+        fp, tn = merge_pair(self.fp, self.tn, other.fp, other.tn)
         return ConfusionCounts(
             threshold=self.threshold,
-            tp=self.tp + other.tp,
-            fp=self.fp + other.fp,
-            fn=self.fn + other.fn,
-            tn=self.tn + other.tn,
+            tp=tp,
+            fp=fp,
+            fn=fn,
+            tn=tn,
             sensitivity=self.sensitivity.merge(other.sensitivity),
             specificity=self.specificity.merge(other.specificity),
             ppv=self.ppv.merge(other.ppv),
@@ -287,6 +322,9 @@ class AgreementTable(_Stat):
     scale: Scale
     categories: tuple[int, ...]
     counts: tuple[tuple[NonNegativeInt, ...], ...]
+    censored: bool = False
+    """True when a site's minimum-cell rule suppressed cells of the table: those cells read
+    0 but are unknown, so ``n`` is a lower bound and no kappa is derived from the table."""
 
     @model_validator(mode="after")
     def _square_over_categories(self) -> AgreementTable:
@@ -338,6 +376,7 @@ class AgreementTable(_Stat):
             scale=self.scale,
             categories=tuple(range(low, high + 1)),
             counts=tuple(tuple(int(c) for c in row) for row in total),
+            censored=self.censored or other.censored,
         )
 
 

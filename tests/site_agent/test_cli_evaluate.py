@@ -15,16 +15,26 @@ from simulations.cli import app
 from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
 from site_agent.contract.release import SiteRelease
 from site_agent.notices import RESEARCH_NOTICE
+from site_agent.site_output import SiteEvaluationOutput
 
 EXAMPLE = Path(__file__).parents[2] / "examples" / "northgate_predictions.csv"
 runner = CliRunner()
+
+
+def _output(stdout: str) -> SiteEvaluationOutput:
+    return SiteEvaluationOutput.model_validate_json(stdout)
+
+
+def _release(stdout: str) -> SiteRelease:
+    """Return the release half of ``--json`` output, re-read as the wire model."""
+    return SiteRelease.from_json(_output(stdout).leaves_the_site.release.to_json())
 
 
 def test_json_output_is_the_release_named_after_the_file() -> None:
     """--json prints a parseable release; the site defaults to the file stem."""
     result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"])
     assert result.exit_code == 0, result.stderr
-    release = SiteRelease.from_json(result.stdout)
+    release = _release(result.stdout)
     assert release.site == "northgate_predictions"
     assert release.protocol_hash == "unregistered"
     assert release.statistics.thresholds == EvaluationPlan().thresholds
@@ -44,7 +54,7 @@ def test_protocol_file_sets_plan_and_hash(tmp_path: Path) -> None:
         ["site", "evaluate", str(EXAMPLE), "--json", "--protocol", str(path), "--site", "ng"],
     )
     assert result.exit_code == 0, result.stderr
-    release = SiteRelease.from_json(result.stdout)
+    release = _release(result.stdout)
     assert release.site == "ng"
     assert release.protocol_hash == protocol.content_hash()
     assert release.statistics.thresholds == (0.25, 0.6)
@@ -55,9 +65,7 @@ def test_readable_output_shows_metrics_and_ends_with_notice() -> None:
     """Without --json the tables show the key metrics and end with the research notice."""
     result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE)])
     assert result.exit_code == 0, result.stderr
-    release = SiteRelease.from_json(
-        runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout
-    )
+    release = _release(runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout)
     assert release.exact.auc.auc is not None
     assert f"{release.exact.auc.auc:.3f}" in result.stdout
     for label in ("sensitivity", "specificity", "AUC, DeLong", "logit", "kappa", "slope"):
@@ -129,13 +137,71 @@ def test_policy_option_shows_the_release_after_disclosure_control(tmp_path: Path
         app, ["site", "evaluate", str(EXAMPLE), "--json", "--policy", str(policy)]
     )
     assert result.exit_code == 0, result.stderr
-    release = SiteRelease.from_json(result.stdout)
+    release = _release(result.stdout)
     h = release.statistics.histogram
     assert set(h.edges) <= set(EvaluationPlan().histogram_edges)
     # The small-cell rule (min_cell 5, common practice): no count from 1 to 4 leaves.
     assert all(v == 0 or v >= 5 for row in (h.positive, h.negative) for v in row)
     assert all(v == 0 or v >= 5 for v in release.statistics.calibration.count)
-    unpoliced = SiteRelease.from_json(
-        runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout
-    )
+    unpoliced = _release(runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"]).stdout)
     assert sum(h.positive) == sum(unpoliced.statistics.histogram.positive)
+
+
+def _interval(estimate: float | None, lower: float | None, upper: float | None) -> str:
+    """Return the table's text of an estimate with its interval (see ``site_agent.cli._ci``)."""
+    assert estimate is not None and lower is not None and upper is not None
+    return f"{estimate:.3f} [{lower:.3f}, {upper:.3f}]"
+
+
+def test_json_separates_what_leaves_from_metrics_that_stay_and_matches_the_table() -> None:
+    """--json: the release, and the table's metrics with intervals and methods beside it."""
+    table = runner.invoke(app, ["site", "evaluate", str(EXAMPLE)])
+    result = runner.invoke(app, ["site", "evaluate", str(EXAMPLE), "--json"])
+    assert result.exit_code == 0, result.stderr
+
+    raw = json.loads(result.stdout)
+    assert set(raw) == {"leaves_the_site", "stays_at_site", "notice"}
+    assert raw["notice"] == RESEARCH_NOTICE
+    out = _output(result.stdout)
+    stays = out.stays_at_site
+    # Every interval the table prints is in the JSON, with its method named.
+    for t in stays.metrics.thresholds:
+        for name in ("sensitivity", "specificity", "ppv", "npv"):
+            p = getattr(t, name)
+            assert p.wilson.method == "wilson" and p.clopper_pearson.method == "clopper-pearson"
+            for record in (p.wilson, p.clopper_pearson):
+                assert _interval(record.estimate, record.lower, record.upper) in table.stdout
+    auc = stays.exact.auc
+    assert auc.method == "delong"
+    assert _interval(auc.auc, auc.lower, auc.upper) in table.stdout
+    assert stays.metrics.agreement, "the example has readers"
+    for k in stays.metrics.agreement:
+        u = k.unweighted
+        assert u.method.startswith("cohen-kappa")
+        assert _interval(u.estimate, u.lower, u.upper) in table.stdout
+    assert out.leaves_the_site.disclosure_note is None
+
+
+def test_json_and_table_show_censored_cells_as_ranges(tmp_path: Path) -> None:
+    """A policy with a large minimum cell: censored cells and their metrics are ranges."""
+    policy = tmp_path / "policy.json"
+    policy.write_text(json.dumps({"min_cell": 11, "small_cells": "merge"}))
+    args = ["site", "evaluate", str(EXAMPLE), "--policy", str(policy)]
+    result = runner.invoke(app, [*args, "--json"])
+    table = runner.invoke(app, args)
+    assert result.exit_code == 0 and table.exit_code == 0, result.stderr
+
+    out = _output(result.stdout)
+    note = out.leaves_the_site.disclosure_note
+    assert note is not None and any(".confusion[" in p for p in note.suppressed)
+    censored = [t for t in out.stays_at_site.metrics.thresholds if t.sensitivity.successes is None]
+    censored += [t for t in out.stays_at_site.metrics.thresholds if t.specificity.successes is None]
+    assert censored
+    for t in censored:
+        for p in (t.sensitivity, t.specificity):
+            if p.successes is None and p.wilson.estimate_low is not None:
+                assert p.wilson.estimate is None and p.wilson.estimate_high is not None
+                assert f"{p.wilson.estimate_low:.3f} to {p.wilson.estimate_high:.3f}" in (
+                    table.stdout
+                )
+    assert "range: censored" in table.stdout

@@ -14,9 +14,10 @@ from site_agent.contract.adaptation_release import (
     ThresholdPerformance,
 )
 from site_agent.contract.release import AucRecord, EstimateRecord
-from site_agent.disclosure.adaptation_control import SUPPRESSED, control_adaptation
+from site_agent.disclosure.adaptation_control import control_adaptation
 from site_agent.disclosure.policy import SitePolicy
 from site_agent.exceptions import DisclosureRefused
+from site_agent.statistics.censored import CENSORED_REASON, CensoredCount
 from site_agent.statistics.proportions import wilson
 
 AUC = AucRecord(
@@ -56,16 +57,24 @@ def _release(tp: int, fn: int, n_test_positive: int = 30) -> AdaptationRelease:
     )
 
 
-def test_small_confusion_cell_is_suppressed_with_its_partner_and_proportions() -> None:
-    """A false-negative count of 3 (< 5) is zeroed with tp; its proportions are withheld."""
+def test_small_confusion_cell_is_censored_with_its_partner_and_proportions() -> None:
+    """A false-negative count of 3 (< 5) is censored with tp; sensitivity becomes a range."""
     out, suppressed = control_adaptation(_release(tp=27, fn=3), SitePolicy(min_cell=5))
 
     row = out.before.at_thresholds[0]
     # Complementary suppression (common practice): with n_test_positive released, keeping
-    # tp would give fn back as n_test_positive − tp.
-    assert row.fn == 0 and row.tp == 0
+    # tp would give fn back as n_test_positive − tp. Known: fn in 1..4, tp + fn = 30.
+    assert row.fn == CensoredCount(low=1, high=4, class_total=30)
+    assert row.tp == CensoredCount(low=26, high=29, class_total=30)
     assert (row.fp, row.tn) == (6, 34)  # the negative class has no small cell: kept
-    assert row.sensitivity.estimate is None and row.sensitivity.reason == SUPPRESSED
+    sens = row.sensitivity
+    assert sens.estimate is None and sens.reason == CENSORED_REASON
+    assert (sens.estimate_low, sens.estimate_high) == (26 / 30, 29 / 30)
+    # The hull holds the unsuppressed Wilson interval of 27/30 (Wilson 1927, via our wilson).
+    true = wilson(27, 30)
+    assert sens.lower is not None and sens.upper is not None
+    assert sens.lower <= true.lower and true.upper <= sens.upper
+    assert sens.lower == wilson(26, 30).lower and sens.upper == wilson(29, 30).upper
     assert suppressed == ("before.at_thresholds[0].tp", "before.at_thresholds[0].fn")
     assert out.before.auc == AUC
 

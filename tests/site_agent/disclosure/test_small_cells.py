@@ -18,6 +18,7 @@ from site_agent.disclosure.policy import SitePolicy
 from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused
+from site_agent.statistics.censored import CensoredCount
 
 SITE = "fernbrook-county-hospital"
 
@@ -40,7 +41,7 @@ def _release_with_one_small_cell() -> SiteRelease:
     return evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="unregistered")
 
 
-def test_small_confusion_cell_is_suppressed_with_its_class_partner() -> None:
+def test_small_confusion_cell_is_censored_with_its_class_partner() -> None:
     """A false-negative count of 3 goes with tp, which would give it back as n_positive − tp."""
     release = _release_with_one_small_cell()
     policy = SitePolicy(min_cell=5)
@@ -49,11 +50,13 @@ def test_small_confusion_cell_is_suppressed_with_its_class_partner() -> None:
 
     at_09 = controlled.statistics.confusion[1]
     assert (release.statistics.confusion[1].tp, release.statistics.confusion[1].fn) == (37, 3)
-    assert (at_09.tp, at_09.fn, at_09.fp, at_09.tn) == (0, 0, 0, 40)
-    # Complementary suppression (common practice): the released class total minus the
-    # released cells of that class is 0 or at least the minimum cell size.
-    hidden = controlled.statistics.n_positive - at_09.tp - at_09.fn
-    assert hidden == 0 or hidden >= 5
+    # Censored, never 0: what is known is fn in 1..4 (the rule) and tp + fn = 40.
+    assert at_09.fn == CensoredCount(low=1, high=4, class_total=40)
+    assert at_09.tp == CensoredCount(low=36, high=39, class_total=40)
+    assert (at_09.fp, at_09.tn) == (0, 40)
+    # Complementary suppression (common practice): the released numbers leave every value
+    # of 1..m−1 possible for the small cell, so it cannot be recovered by subtraction.
+    assert at_09.fn.low == 1 and at_09.fn.high == policy.min_cell - 1
     assert {"statistics.confusion[1].tp", "statistics.confusion[1].fn"} <= set(note.suppressed)
 
 
