@@ -34,6 +34,7 @@ from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
 from simulations.references import with_reference_lines
 from simulations.scenario import Scenario
+from simulations.simulation_truth import cohort_truth
 from simulations.sites import SyntheticSite, build_sites, development_split
 from site_agent.contract.protocol import (
     AdaptationPlan,
@@ -41,8 +42,8 @@ from site_agent.contract.protocol import (
     ModelReference,
     Operation,
     StudyProtocol,
-    uniform_edges,
 )
+from site_agent.contract.score_scales import logit_edges
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction, UpdateRelease
 from site_agent.service import SiteSettings
@@ -51,8 +52,10 @@ from site_agent.training.model_bundle import save_bundle
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"
 DEFAULT_SUBGROUPS = ("scanner_vendor",)
-HISTOGRAM_BINS = 40
-"""Fewer bins than the smallest site has cases: finer bins would resolve single cases."""
+HISTOGRAM_BINS = 80
+"""Fewer bins than the smallest site has cases (86 held-out cases at the development site):
+a site refuses a histogram with more bins than cases. The bins are equal steps of log-odds
+(:func:`~site_agent.contract.score_scales.logit_edges`), so saturated scores stay apart."""
 DEFAULT_THRESHOLDS = (0.5,)
 
 Progress = Callable[[str], None]
@@ -89,10 +92,13 @@ def prepare_study(
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
     adapt: bool = False,
+    histogram_edges: tuple[float, ...] | None = None,
 ) -> PreparedStudy:
     """Build the sites, develop and bundle the model, register the protocol, lay out sites.
 
     Each site's cases, policy, approvals and ledger go under ``out/site-data/<site>/``.
+    ``histogram_edges`` replaces the default score bins (:data:`HISTOGRAM_BINS` steps of
+    log-odds) in the protocol.
     """
     say = progress or (lambda _: None)
     out.mkdir(parents=True, exist_ok=True)
@@ -114,7 +120,7 @@ def prepare_study(
         ),
         evaluation=EvaluationPlan(
             thresholds=DEFAULT_THRESHOLDS,
-            histogram_edges=uniform_edges(HISTOGRAM_BINS),
+            histogram_edges=histogram_edges or logit_edges(HISTOGRAM_BINS),
             subgroups=DEFAULT_SUBGROUPS,
         ),
         quorum=max(2, len(sites) // 2),
@@ -137,6 +143,7 @@ def rehearse(
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
     adapt: bool = False,
+    histogram_edges: tuple[float, ...] | None = None,
 ) -> RehearsalOutput:
     """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
 
@@ -163,6 +170,7 @@ def rehearse(
         unapproved=unapproved,
         progress=say,
         adapt=adapt,
+        histogram_edges=histogram_edges,
     )
     protocol, bundle_path, settings, sites = (
         study.protocol,
@@ -197,6 +205,9 @@ def rehearse(
         results = with_reference_lines(
             results, protocol, outcome.fine_tuning, bundle_path, settings
         )
+    truth = cohort_truth(results, bundle_path, protocol, settings)
+    if truth is not None:
+        results = results.model_copy(update={"simulation_checks": [truth]})
     results_path = out / RESULTS_FILE
     results.write_json(results_path)
     exports = tuple(write_exports(results, out))

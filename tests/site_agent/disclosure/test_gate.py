@@ -451,3 +451,23 @@ def test_apply_policy_refuses_disallowed_subgroups_in_a_release(tmp_path: Path) 
 
     with pytest.raises(DisclosureRefused, match="subgroup_attribute_not_allowed"):
         apply_policy(release, site.policy)
+
+
+def test_a_tampered_ledger_makes_the_privacy_budget_check_refuse(tmp_path: Path) -> None:
+    """Lowering a spent ε in the ledger is caught: the next request is declined, unspent."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+    _ask(site, protocol, times=2)
+    lines = site.ledger.read_text().splitlines()
+    # The attack: make the budget look unspent so more releases would pass the check.
+    site.ledger.write_text(
+        "".join(line.replace('"epsilon_spent":0.5', '"epsilon_spent":0.0') + "\n" for line in lines)
+    )
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.LEDGER_UNVERIFIED)
+    assert site.entries()[-1]["reason"] == "ledger_unverified"
+    assert site.entries()[-1]["epsilon_spent"] == 0.0
