@@ -21,6 +21,7 @@ import time
 from collections.abc import Callable, Collection
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 
 import pandas as pd
 
@@ -43,9 +44,14 @@ from site_agent.contract.protocol import (
     Operation,
     StudyProtocol,
 )
-from site_agent.contract.score_scales import logit_edges
+from site_agent.contract.score_scales import logit_edges, quantile_edges
 from site_agent.disclosure.approvals import approve
-from site_agent.disclosure.policy import SitePolicy, SmallCellAction, UpdateRelease
+from site_agent.disclosure.policy import (
+    DEFAULT_MIN_CELL,
+    SitePolicy,
+    SmallCellAction,
+    UpdateRelease,
+)
 from site_agent.service import SiteSettings
 from site_agent.training.model_bundle import save_bundle
 
@@ -59,6 +65,9 @@ a site refuses a histogram with more bins than cases. The bins are equal steps o
 DEFAULT_THRESHOLDS = (0.5,)
 
 Progress = Callable[[str], None]
+ScoreBins = Literal["logit", "development-quantiles"]
+"""Where the protocol puts its score bins: equal steps of log-odds, or quantiles of the
+development site's training scores (:mod:`site_agent.contract.score_scales`)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -93,12 +102,15 @@ def prepare_study(
     progress: Progress | None = None,
     adapt: bool = False,
     histogram_edges: tuple[float, ...] | None = None,
+    score_bins: ScoreBins = "logit",
 ) -> PreparedStudy:
     """Build the sites, develop and bundle the model, register the protocol, lay out sites.
 
     Each site's cases, policy, approvals and ledger go under ``out/site-data/<site>/``.
     ``histogram_edges`` replaces the default score bins (:data:`HISTOGRAM_BINS` steps of
-    log-odds) in the protocol.
+    log-odds) in the protocol; ``score_bins="development-quantiles"`` instead puts the
+    edges at quantiles of the model's scores on the development site's training cases,
+    one bin per :data:`~site_agent.disclosure.policy.DEFAULT_MIN_CELL` cases at most.
     """
     say = progress or (lambda _: None)
     out.mkdir(parents=True, exist_ok=True)
@@ -112,6 +124,8 @@ def prepare_study(
     bundle_path = out / "model" / "model-bundle.zip"
     bundle_path.parent.mkdir(parents=True, exist_ok=True)
     sha256 = save_bundle(developed.model, developed.manifest, bundle_path)
+    if histogram_edges is None and score_bins == "development-quantiles":
+        histogram_edges = _development_quantile_edges(bundle_path, sha256, train)
     protocol = StudyProtocol(
         study_id=f"rehearsal-{scenario.seed}",
         title=f"Rehearsal of an external validation across {len(sites)} invented hospitals",
@@ -144,6 +158,7 @@ def rehearse(
     progress: Progress | None = None,
     adapt: bool = False,
     histogram_edges: tuple[float, ...] | None = None,
+    score_bins: ScoreBins = "logit",
 ) -> RehearsalOutput:
     """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
 
@@ -171,6 +186,7 @@ def rehearse(
         progress=say,
         adapt=adapt,
         histogram_edges=histogram_edges,
+        score_bins=score_bins,
     )
     protocol, bundle_path, settings, sites = (
         study.protocol,
@@ -220,6 +236,18 @@ def rehearse(
         exports=exports,
         seconds=time.perf_counter() - started,
     )
+
+
+def _development_quantile_edges(
+    bundle_path: Path, sha256: str, train: pd.DataFrame
+) -> tuple[float, ...]:
+    """Edges at quantiles of the developed model's scores on its own training cases."""
+    from site_agent.training.model_bundle import load_bundle
+
+    model = load_bundle(bundle_path.read_bytes(), expected_sha256=sha256)
+    scores = model.predict(train)
+    bins = min(HISTOGRAM_BINS, len(scores) // DEFAULT_MIN_CELL)
+    return quantile_edges(scores.tolist(), bins, min_cell=DEFAULT_MIN_CELL)
 
 
 def _prepare_sites(

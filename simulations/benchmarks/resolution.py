@@ -27,22 +27,30 @@ SITE_TOLERANCE = 0.01
 BOUND_TARGET = 0.02
 ERROR_TARGET = 0.002
 
-SCALES = {
+SCALES: dict[str, tuple[float, ...] | None] = {
     f"logit{HISTOGRAM_BINS}": logit_edges(HISTOGRAM_BINS),
+    "devquantiles": None,
     "uniform40": uniform_edges(40),
     "uniform100": uniform_edges(100),
 }
-"""Score scales the benchmark can compare: the default, and equal bins on [0, 1]."""
+"""Score scales the benchmark can compare: the default, the development site's training
+score quantiles (None: computed in the rehearsal), and equal bins on [0, 1]."""
 
 
 def _verdict(ok: bool) -> str:
     return "meets" if ok else "MISSES"
 
 
-def run_scale(name: str, edges: tuple[float, ...], work: Path) -> None:
+def run_scale(name: str, edges: tuple[float, ...] | None, work: Path) -> None:
     """Rehearse the default scenario with ``edges`` and print the table for it."""
-    results = rehearse(default_scenario(), work / name, histogram_edges=edges).results
-    print(f"\n== {name}: {len(edges) - 1} protocol bins ==")
+    output = rehearse(
+        default_scenario(),
+        work / name,
+        histogram_edges=edges,
+        score_bins="logit" if edges is not None else "development-quantiles",
+    )
+    results = output.results
+    print(f"\n== {name} ==")
     print(f"{'site':<28} {'exact':>7} {'bins':>7} {'|diff|':>7} {'ROC pts':>7}")
     worst = 0.0
     for site in results.sites:

@@ -202,3 +202,28 @@ def test_rehearsal_one_cohort_auc_bound_holds_and_covers_the_true_value(
     assert check.bound is not None and check.bound <= 0.035
     assert check.true_value == pytest.approx(truth, abs=1e-12)
     assert abs(check.estimate - truth) <= check.bound
+
+
+def test_development_quantile_bins_are_quantiles_of_the_training_scores(
+    tmp_path: Path,
+) -> None:
+    """--score-bins development-quantiles: inner edges are numpy quantiles k/38 of the scores."""
+    import numpy as np
+
+    from simulations.dataset import load_public_dataset
+    from simulations.rehearsal import prepare_study
+    from simulations.sites import build_sites, development_split
+    from site_agent.training.model_bundle import load_bundle
+
+    scenario = default_scenario()
+    study = prepare_study(scenario, tmp_path, score_bins="development-quantiles")
+    development = build_sites(scenario, load_public_dataset())[scenario.development_index]
+    train, _ = development_split(development, seed=scenario.seed)
+    scores = load_bundle(study.bundle_path).predict(train)
+    bins = len(train) // 5  # one bin per minimum cell of training cases
+
+    edges = study.protocol.evaluation.histogram_edges
+
+    expected = np.quantile(scores, np.arange(1, bins) / bins)  # numpy reference
+    assert edges[0] == 0.0 and edges[-1] == 1.0
+    assert np.array(edges[1:-1]) == pytest.approx(np.unique(expected), rel=1e-9)
