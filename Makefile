@@ -38,6 +38,7 @@ bench: venv
 	$(BIN)/python -m simulations.benchmarks.adaptation
 	$(BIN)/python -m simulations.benchmarks.drift
 	$(BIN)/python -m simulations.benchmarks.planning
+	$(BIN)/python -m simulations.benchmarks.resolution
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .mypy_cache .pytest_cache .ruff_cache

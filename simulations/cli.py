@@ -111,6 +111,17 @@ def rehearse_command(
             ),
         ),
     ] = False,
+    score_bins: Annotated[
+        str,
+        typer.Option(
+            "--score-bins",
+            help=(
+                "Score bins fixed in the protocol: logit (equal steps of log-odds, default) "
+                "or development-quantiles (quantiles of the development site's training "
+                "scores)."
+            ),
+        ),
+    ] = "logit",
 ) -> None:
     """Run a rehearsal and say where its report is."""
     from simulations.rehearsal import rehearse
@@ -126,6 +137,8 @@ def rehearse_command(
         _fail(f"unknown engine {engine!r}: use inprocess or loopback")
     if architecture not in ("logistic", "mlp"):
         _fail(f"unknown model {architecture!r}: use logistic or mlp")
+    if score_bins not in ("logit", "development-quantiles"):
+        _fail(f"unknown score bins {score_bins!r}: use logit or development-quantiles")
     out.mkdir(parents=True, exist_ok=True)
     log_path = out / "rehearsal.log"
     logging.basicConfig(
@@ -171,6 +184,7 @@ def rehearse_command(
                 dataset=dataset,
                 progress=progress,
                 adapt=adapt,
+                score_bins=score_bins,  # type: ignore[arg-type]
             )
     except SitepoolError as exc:
         _fail(str(exc))

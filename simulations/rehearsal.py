@@ -21,6 +21,7 @@ import time
 from collections.abc import Callable, Collection
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 
 import pandas as pd
 
@@ -34,6 +35,7 @@ from simulations.dataset import FeatureTable, load_public_dataset
 from simulations.development import develop_model
 from simulations.references import with_reference_lines
 from simulations.scenario import Scenario
+from simulations.simulation_truth import cohort_truth
 from simulations.sites import SyntheticSite, build_sites, development_split
 from site_agent.contract.protocol import (
     AdaptationPlan,
@@ -41,21 +43,31 @@ from site_agent.contract.protocol import (
     ModelReference,
     Operation,
     StudyProtocol,
-    uniform_edges,
 )
+from site_agent.contract.score_scales import logit_edges, quantile_edges
 from site_agent.disclosure.approvals import approve
-from site_agent.disclosure.policy import SitePolicy, SmallCellAction, UpdateRelease
+from site_agent.disclosure.policy import (
+    DEFAULT_MIN_CELL,
+    SitePolicy,
+    SmallCellAction,
+    UpdateRelease,
+)
 from site_agent.service import SiteSettings
 from site_agent.training.model_bundle import save_bundle
 
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"
 DEFAULT_SUBGROUPS = ("scanner_vendor",)
-HISTOGRAM_BINS = 40
-"""Fewer bins than the smallest site has cases: finer bins would resolve single cases."""
+HISTOGRAM_BINS = 80
+"""Fewer bins than the smallest site has cases (86 held-out cases at the development site):
+a site refuses a histogram with more bins than cases. The bins are equal steps of log-odds
+(:func:`~site_agent.contract.score_scales.logit_edges`), so saturated scores stay apart."""
 DEFAULT_THRESHOLDS = (0.5,)
 
 Progress = Callable[[str], None]
+ScoreBins = Literal["logit", "development-quantiles"]
+"""Where the protocol puts its score bins: equal steps of log-odds, or quantiles of the
+development site's training scores (:mod:`site_agent.contract.score_scales`)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,10 +101,16 @@ def prepare_study(
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
     adapt: bool = False,
+    histogram_edges: tuple[float, ...] | None = None,
+    score_bins: ScoreBins = "logit",
 ) -> PreparedStudy:
     """Build the sites, develop and bundle the model, register the protocol, lay out sites.
 
     Each site's cases, policy, approvals and ledger go under ``out/site-data/<site>/``.
+    ``histogram_edges`` replaces the default score bins (:data:`HISTOGRAM_BINS` steps of
+    log-odds) in the protocol; ``score_bins="development-quantiles"`` instead puts the
+    edges at quantiles of the model's scores on the development site's training cases,
+    one bin per :data:`~site_agent.disclosure.policy.DEFAULT_MIN_CELL` cases at most.
     """
     say = progress or (lambda _: None)
     out.mkdir(parents=True, exist_ok=True)
@@ -106,6 +124,8 @@ def prepare_study(
     bundle_path = out / "model" / "model-bundle.zip"
     bundle_path.parent.mkdir(parents=True, exist_ok=True)
     sha256 = save_bundle(developed.model, developed.manifest, bundle_path)
+    if histogram_edges is None and score_bins == "development-quantiles":
+        histogram_edges = _development_quantile_edges(bundle_path, sha256, train)
     protocol = StudyProtocol(
         study_id=f"rehearsal-{scenario.seed}",
         title=f"Rehearsal of an external validation across {len(sites)} invented hospitals",
@@ -114,7 +134,7 @@ def prepare_study(
         ),
         evaluation=EvaluationPlan(
             thresholds=DEFAULT_THRESHOLDS,
-            histogram_edges=uniform_edges(HISTOGRAM_BINS),
+            histogram_edges=histogram_edges or logit_edges(HISTOGRAM_BINS),
             subgroups=DEFAULT_SUBGROUPS,
         ),
         quorum=max(2, len(sites) // 2),
@@ -137,6 +157,8 @@ def rehearse(
     unapproved: Collection[str] = (),
     progress: Progress | None = None,
     adapt: bool = False,
+    histogram_edges: tuple[float, ...] | None = None,
+    score_bins: ScoreBins = "logit",
 ) -> RehearsalOutput:
     """Run a rehearsal of ``scenario`` and write its results, exports and report to ``out``.
 
@@ -163,6 +185,8 @@ def rehearse(
         unapproved=unapproved,
         progress=say,
         adapt=adapt,
+        histogram_edges=histogram_edges,
+        score_bins=score_bins,
     )
     protocol, bundle_path, settings, sites = (
         study.protocol,
@@ -197,6 +221,9 @@ def rehearse(
         results = with_reference_lines(
             results, protocol, outcome.fine_tuning, bundle_path, settings
         )
+    truth = cohort_truth(results, bundle_path, protocol, settings)
+    if truth is not None:
+        results = results.model_copy(update={"simulation_checks": [truth]})
     results_path = out / RESULTS_FILE
     results.write_json(results_path)
     exports = tuple(write_exports(results, out))
@@ -209,6 +236,18 @@ def rehearse(
         exports=exports,
         seconds=time.perf_counter() - started,
     )
+
+
+def _development_quantile_edges(
+    bundle_path: Path, sha256: str, train: pd.DataFrame
+) -> tuple[float, ...]:
+    """Edges at quantiles of the developed model's scores on its own training cases."""
+    from site_agent.training.model_bundle import load_bundle
+
+    model = load_bundle(bundle_path.read_bytes(), expected_sha256=sha256)
+    scores = model.predict(train)
+    bins = min(HISTOGRAM_BINS, len(scores) // DEFAULT_MIN_CELL)
+    return quantile_edges(scores.tolist(), bins, min_cell=DEFAULT_MIN_CELL)
 
 
 def _prepare_sites(

@@ -21,7 +21,12 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 
-from coordinator.pooling.cohort import merge_statistics, pooled_auc, pooled_subgroup_rows
+from coordinator.pooling.cohort import (
+    cohort_roc,
+    merge_statistics,
+    pooled_auc,
+    pooled_subgroup_rows,
+)
 from coordinator.pooling.comparisons import compare_score_distributions
 from coordinator.pooling.findings import study_findings
 from coordinator.pooling.meta_analysis import pooled_vs_meta_note
@@ -103,7 +108,9 @@ def build_results(
         metrics += [r for r in summary_rows(POOLED, summary) if r.metric != "auc"]
         metrics.append(pooled_auc(releases, confidence))
         metrics += pooled_subgroup_rows(releases, confidence)
-        curves += site_curves(POOLED, summary)
+        # The pooled ROC curve comes from every site's own bins, not from the merged ones.
+        curves += [c for c in site_curves(POOLED, summary) if c.kind != "roc"]
+        curves += cohort_roc(releases)
         two_by_two += two_by_two_tables(POOLED, pooled)
         meta = meta_rows(releases, confidence) + site_subgroup_meta(releases, info, confidence)
         tests = _distribution_tests(releases)

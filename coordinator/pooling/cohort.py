@@ -11,13 +11,16 @@ from __future__ import annotations
 from collections.abc import Sequence
 from functools import reduce
 
+import numpy as np
+
 from coordinator.pooling.sites import POOLED, estimate_row
-from coordinator.pooling.study_results import MetricRow
+from coordinator.pooling.study_results import CurvePoints, MetricRow
 from site_agent.contract.release import SiteRelease, SubgroupRelease
 from site_agent.exceptions import InputError
+from site_agent.statistics.binned_auc import clamped_logit, interpolated_auc
 from site_agent.statistics.estimates import two_sided_z
 from site_agent.statistics.metrics import ProportionMetrics, summarize
-from site_agent.statistics.roc import hanley_mcneil_se, mixed_histogram_auc
+from site_agent.statistics.roc import hanley_mcneil_se
 from site_agent.statistics.summaries import ScoreHistogram, SufficientStatistics
 
 
@@ -47,8 +50,11 @@ def cohort_auc(
 
     Within a site (``i = j``) ``AUC_ii`` is the site's exact AUC, released as a scalar.
     Across sites it comes from the two sites' score histograms, compared bin against bin
-    (:func:`site_agent.statistics.roc.mixed_histogram_auc`; sites may release different bins once
-    disclosure control merges small ones), and only those pairs add to the bound. A site
+    with cases spread evenly in log-odds within a bin
+    (:func:`site_agent.statistics.binned_auc.interpolated_auc`; sites may release
+    different bins once disclosure control merges small ones), and only those pairs add
+    to the bound, which is the largest distance from the estimate to any AUC the released
+    bins allow. A site
     whose exact AUC is withheld (differential privacy) uses its histogram for its own
     pairs too. The interval is normal with the Hanley & McNeil (1982) standard error,
     which needs only the AUC and the class sizes.
@@ -72,7 +78,7 @@ def cohort_auc(
             if exact is not None:
                 value += weight * exact
                 continue
-            pair = mixed_histogram_auc([(hi.edges, hi.positive)], [(hj.edges, hj.negative)])
+            pair = interpolated_auc([(hi.edges, hi.positive)], [(hj.edges, hj.negative)])
             value += weight * pair.auc
             bound += weight * pair.bound
     nan = float("nan")
@@ -112,3 +118,34 @@ def pooled_subgroup_rows(releases: Sequence[SiteRelease], confidence: float) -> 
                 row = estimate_row(POOLED, name, p.wilson, threshold=t.threshold)
                 rows.append(row.model_copy(update={"subgroup": label}))
     return rows
+
+
+def cohort_roc(releases: Sequence[SiteRelease]) -> list[CurvePoints]:
+    """ROC curve of all sites' cases as one cohort, from the sites' own score bins.
+
+    Merging histograms keeps only the edges every site kept, which can leave a pooled
+    curve of two or three points; here each threshold is an edge of any site, and a site's
+    bin that straddles it counts the share of the bin above it, with cases spread evenly
+    in log-odds within the bin (the assumption of
+    :func:`site_agent.statistics.binned_auc.interpolated_auc`). Empty when a class is absent.
+    """
+    hists = [r.statistics.histogram for r in releases]
+    big_p = sum(sum(h.positive) for h in hists)
+    big_n = sum(sum(h.negative) for h in hists)
+    if not releases or not big_p or not big_n:
+        return []
+    thresholds = np.array(sorted({e for h in hists for e in h.edges}, reverse=True))
+    z = clamped_logit(thresholds)
+    above_pos = np.zeros(thresholds.size)
+    above_neg = np.zeros(thresholds.size)
+    for h in hists:
+        edges = clamped_logit(np.asarray(h.edges, dtype=float))
+        lo, hi = edges[:-1], edges[1:]
+        # Share of each bin at or above each threshold, cases spread evenly within the bin.
+        width = np.maximum(hi - lo, 1e-12)
+        share = np.clip((hi[None, :] - z[:, None]) / width[None, :], 0.0, 1.0)
+        above_pos += share @ np.asarray(h.positive, dtype=float)
+        above_neg += share @ np.asarray(h.negative, dtype=float)
+    tpr = [0.0, *(above_pos / big_p).tolist(), 1.0]
+    fpr = [0.0, *(above_neg / big_n).tolist(), 1.0]
+    return [CurvePoints(site=POOLED, kind="roc", x=fpr, y=tpr)]

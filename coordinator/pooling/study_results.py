@@ -186,6 +186,26 @@ class ReferenceLine(_Record):
     reason: str | None = None
 
 
+class SimulationCheck(_Record):
+    """A value a rehearsal knows because its data are simulated, beside the study's estimate.
+
+    No study of real hospitals can fill this in: the coordinator never sees a case. It is
+    shown marked "simulation only".
+    """
+
+    site: str = Field(description="Site name, or 'pooled' for all cases as one cohort.")
+    metric: str
+    method: str = Field(description="Method of the estimate it checks, e.g. hanley-mcneil.")
+    estimate: Number = Field(description="The study's estimate from released statistics.")
+    bound: float | None = Field(default=None, description="Its stated binning bound.")
+    true_value: Number = Field(description="The value computed from every simulated case.")
+
+    @property
+    def error(self) -> float:
+        """Return ``estimate − true_value``."""
+        return self.estimate - self.true_value
+
+
 class StudyResults(_Record):
     """Everything a study produced."""
 
@@ -207,6 +227,9 @@ class StudyResults(_Record):
     reference_lines: list[ReferenceLine] = Field(default_factory=list)
     findings: list[str] = Field(default_factory=list, description="Plain-language findings.")
     notes: list[str] = Field(default_factory=list, description="Caveats, e.g. resampling.")
+    simulation_checks: list[SimulationCheck] = Field(
+        default_factory=list, description="Rehearsals only: true values of the simulated data."
+    )
 
     def write_json(self, path: Path) -> None:
         """Write the results as indented JSON."""

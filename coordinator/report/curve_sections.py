@@ -31,7 +31,8 @@ def roc_section(results: StudyResults) -> str:
     drawn = (
         "Curves are drawn from the score bins the sites released, so a curve is coarser "
         "than the site's exact AUC when its scores crowd into few bins; the area under the "
-        "drawn curve is given beside the AUC where the two differ."
+        "drawn curve is given beside the AUC where the two differ. The pooled curve uses "
+        "every site's own bins, with cases spread evenly in log-odds within a bin."
     )
     return html_figure(
         "fig-roc-all",

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 
-from coordinator.pooling.study_results import StudyResults
+from coordinator.pooling.study_results import MetricRow, StudyResults
 from coordinator.report.exports import headline_auc
 from coordinator.report.findings_list import findings_section
 from coordinator.report.html_parts import (
@@ -89,7 +89,7 @@ def summary_section(results: StudyResults) -> str:
             )
     cohort = headline_auc(results, POOLED)
     if cohort is not None and math.isfinite(cohort.estimate):
-        items.append(("AUC, all cases as one cohort", estimate_cell(cohort)))
+        items.append(("AUC, all cases as one cohort", _cohort_cell(results, cohort)))
     missing = [s.site for s in results.sites if s.status != "released"]
     if missing:
         items.append(("Did not release", esc(", ".join(missing))))
@@ -97,3 +97,17 @@ def summary_section(results: StudyResults) -> str:
     return f'<div class="summary">{findings}</div>' + (
         f'<h3>Key numbers</h3><dl class="meta" id="key-numbers">{listed}</dl>' if items else ""
     )
+
+
+def _cohort_cell(results: StudyResults, cohort: MetricRow) -> str:
+    """Return the one-cohort AUC with its binning bound and, in a rehearsal, its true value."""
+    text = estimate_cell(cohort)
+    if cohort.bound is not None and math.isfinite(cohort.bound):
+        text += f' <span class="ci">±{cohort.bound:.3f} largest possible binning error</span>'
+    for check in results.simulation_checks:
+        if check.site == cohort.site and check.metric == cohort.metric:
+            text += (
+                f"; true value {num('auc', check.true_value)}, error "
+                f"{check.error:+.4f} <em>(simulation only)</em>"
+            )
+    return text

@@ -16,6 +16,7 @@ from pathlib import Path
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from site_agent.contract.score_scales import logit_edges
 from site_agent.exceptions import ProtocolError
 
 DEFAULT_THRESHOLDS: tuple[float, ...] = (0.5,)
@@ -55,8 +56,9 @@ class EvaluationPlan(_Frozen):
         default=DEFAULT_THRESHOLDS, description="Score thresholds for confusion counts."
     )
     histogram_edges: tuple[float, ...] = Field(
-        default_factory=lambda: uniform_edges(DEFAULT_HISTOGRAM_BINS),
-        description="Fixed bin edges on [0, 1] for class-conditional score histograms.",
+        default_factory=lambda: logit_edges(DEFAULT_HISTOGRAM_BINS),
+        description="Fixed bin edges on [0, 1] for class-conditional score histograms "
+        "(default: equal steps of log-odds, see site_agent.contract.score_scales).",
     )
     calibration_bins: int = Field(default=DEFAULT_CALIBRATION_BINS, ge=2, le=100)
     subgroups: tuple[str, ...] = Field(

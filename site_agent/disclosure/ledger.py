@@ -205,6 +205,7 @@ class LedgerSession:
         data = self._handle.read()
         lines, partial = _raw_lines(data)
         entries = [_parse_line(line, i) for i, line in enumerate(lines, start=1)]
+        self._lines = lines
         head = self._ledger._read_head()
         acknowledged = head.sequence if head is not None else 0
         if partial:
@@ -239,11 +240,43 @@ class LedgerSession:
         """Entries present when the session opened plus those appended in it."""
         return list(self._entries)
 
+    def verify_chain(self) -> None:
+        """Check every entry's own hash and its link to the entry before it.
+
+        The lines are re-hashed as read under the lock, so an entry edited on disk (say,
+        its ``epsilon_spent`` lowered) or a line removed from the middle is found before
+        any total is read from the ledger.
+
+        Raises
+        ------
+        LedgerError
+            Naming the first entry that was changed or does not follow the one before.
+        """
+        previous = GENESIS_HASH
+        for position, line in enumerate(self._lines, start=1):
+            fields = json.loads(line)
+            entry = self._entries[position - 1]
+            if _digest(fields) != entry.entry_hash:
+                raise LedgerError(f"ledger entry {position} was changed; run verify")
+            if entry.previous_hash != previous:
+                raise LedgerError(
+                    f"ledger entry {position} does not follow the entry before it; run verify"
+                )
+            previous = entry.entry_hash
+
     def epsilon_spent(self, study_id: str) -> float:
         """Return the total epsilon charged to ``study_id`` (sequential composition).
 
         Declines count too: a decline decided on noisy counts is charged its epsilon.
+        The hash chain is verified first (:meth:`verify_chain`): a budget summed from a
+        ledger that was edited would not be the budget that was spent.
+
+        Raises
+        ------
+        LedgerError
+            If the chain does not verify; the caller releases nothing.
         """
+        self.verify_chain()
         return sum(e.epsilon_spent for e in self._entries if e.study_id == study_id)
 
     def append(
@@ -280,7 +313,8 @@ class LedgerSession:
             fields["request_key"] = request_key
         fields["entry_hash"] = _digest(fields)
         entry = LedgerEntry.model_validate(fields)
-        line = (canonical_json(fields) + "\n").encode()
+        text = canonical_json(fields)
+        line = (text + "\n").encode()
         self._handle.seek(0, os.SEEK_END)
         self._handle.write(line)
         self._handle.flush()
@@ -290,6 +324,7 @@ class LedgerSession:
             _Head(sequence=entry.sequence, entry_hash=entry.entry_hash).model_dump_json(),
         )
         self._entries.append(entry)
+        self._lines.append(text)
         return entry
 
 

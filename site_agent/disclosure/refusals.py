@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from enum import StrEnum
 
-from site_agent.exceptions import DisclosureRefused
+from site_agent.exceptions import DisclosureRefused, LedgerError
 
 
 class RefusalCode(StrEnum):
@@ -38,6 +38,7 @@ class RefusalCode(StrEnum):
     WINDOW_WITHOUT_CASES = "window_without_cases"
     NOT_COVERED_BY_PRIVACY = "not_covered_by_privacy"
     UPDATE_NOT_ALLOWED = "update_release_not_allowed"
+    LEDGER_UNVERIFIED = "ledger_unverified"
 
 
 REFUSAL_TEXT: Mapping[RefusalCode, str] = {
@@ -64,6 +65,9 @@ REFUSAL_TEXT: Mapping[RefusalCode, str] = {
     RefusalCode.SITE_DATA_INVALID: "the site's data failed validation; see the site's log",
     RefusalCode.SITE_ERROR: "the site agent failed; details are in the site's own log",
     RefusalCode.WINDOW_WITHOUT_CASES: "no case at this site was acquired in the time window",
+    RefusalCode.LEDGER_UNVERIFIED: (
+        "the site's release ledger failed verification, so its privacy budget cannot be read"
+    ),
 }
 
 _ERROR_CODES: Mapping[str, RefusalCode] = {
@@ -87,7 +91,13 @@ def refusal(code: RefusalCode, operation: str | None = None) -> DisclosureRefuse
 
 
 def refusal_code(exc: BaseException) -> RefusalCode:
-    """Return the code a failure leaves as: a refusal's own, else ``site_error``."""
+    """Return the code a failure leaves as: a refusal's own, else ``site_error``.
+
+    A ledger that fails verification while a budget is read leaves as
+    ``ledger_unverified``: the site knows why it released nothing, and says so.
+    """
+    if isinstance(exc, LedgerError):
+        return RefusalCode.LEDGER_UNVERIFIED
     if isinstance(exc, DisclosureRefused):
         try:
             return RefusalCode(exc.reason)

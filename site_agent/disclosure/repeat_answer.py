@@ -30,7 +30,14 @@ from typing import Any
 
 from site_agent.contract.node_config import DATA_PATH_KEY
 from site_agent.contract.wire import SiteReply, SiteRequest
-from site_agent.disclosure.ledger import LedgerEntry, Outcome, ReleaseLedger, canonical_json
+from site_agent.disclosure.ledger import (
+    LedgerEntry,
+    Outcome,
+    ReleaseLedger,
+    canonical_json,
+    verify_ledger,
+)
+from site_agent.exceptions import LedgerError
 
 REPEAT_KEY = "repeat_of"
 """Key of a repeat entry's ``released`` object: the sequence of the entry it repeats."""
@@ -121,5 +128,18 @@ def ledger_repeat(
 
 
 def find_earlier_answer(ledger: ReleaseLedger, key: str) -> LedgerEntry | None:
-    """Return the ledgered first answer under ``key`` (:func:`request_key`), or None."""
+    """Return the ledgered first answer under ``key`` (:func:`request_key`), or None.
+
+    The hash chain is verified first: an answer read back from a ledger that was altered
+    is no answer, and the request is declined as ``ledger_unverified`` instead.
+
+    Raises
+    ------
+    LedgerError
+        If the ledger fails verification.
+    """
+    if ledger.path.exists():
+        check = verify_ledger(ledger.path)
+        if not check.ok:
+            raise LedgerError("the release ledger failed verification; run verify")
     return earlier_answer(ledger.entries(), key)

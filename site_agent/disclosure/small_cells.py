@@ -28,7 +28,9 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    derived from it). Histogram
    and calibration bins are suppressed, with further bins until no row's suppressed sum is
    small, or merged with their neighbours until every row of every bin is 0 or at least
-   ``m`` (the new edges are a subset of the old).
+   ``m`` (the new edges are a subset of the old). Agreement tables of the model at two
+   thresholds against one reader are withheld whole when their difference would isolate
+   a small number of cases (:mod:`site_agent.disclosure.threshold_tables`).
 6. With differential privacy on, every count and per-bin sum gets noise *first*
    (:mod:`site_agent.disclosure.privacy_budget`); rules 2-5 then run on the noisy values, which is
    post-processing. The exact site-level estimates and the patient moments are withheld,
@@ -66,6 +68,7 @@ from site_agent.disclosure.policy import (
 )
 from site_agent.disclosure.privacy_budget import noised_release
 from site_agent.disclosure.refusals import RefusalCode, refusal
+from site_agent.disclosure.threshold_tables import differencing_tables
 from site_agent.statistics.summaries import (
     AgreementTable,
     CalibrationBins,
@@ -251,6 +254,9 @@ def _controlled(
                 )
             }
         )
+    # Model-at-threshold tables that two thresholds would difference into a small cell.
+    dropped = differencing_tables(agreement, [c.threshold for c in stats.confusion], m)
+    note.withheld.extend(f"{path}.agreement[{i}]" for i in sorted(dropped))
     return SufficientStatistics(
         n_observations=n_observations,
         n_positive=stats.n_positive,
@@ -263,7 +269,9 @@ def _controlled(
         histogram=_histogram(histogram, m, action, f"{path}.histogram", note),
         calibration=_calibration(stats.calibration, m, action, f"{path}.calibration", note),
         agreement=tuple(
-            _agreement(t, m, f"{path}.agreement[{i}]", note) for i, t in enumerate(agreement)
+            _agreement(t, m, f"{path}.agreement[{i}]", note)
+            for i, t in enumerate(agreement)
+            if i not in dropped
         ),
     )
 

@@ -525,3 +525,23 @@ def test_reask_on_changed_data_is_answered_afresh_and_charged(tmp_path: Path) ->
     entries = ReleaseLedger(site.ledger).entries()
     assert [e.epsilon_spent for e in entries] == [0.5, 0.5]
     assert entries[0].request_key != entries[1].request_key
+
+
+def test_a_tampered_ledger_makes_the_privacy_budget_check_refuse(tmp_path: Path) -> None:
+    """Lowering a spent ε in the ledger is caught: the next request is declined, unspent."""
+    privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
+    site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+    _ask(site, protocol, times=2)
+    lines = site.ledger.read_text().splitlines()
+    # The attack: make the budget look unspent so more releases would pass the check.
+    site.ledger.write_text(
+        "".join(line.replace('"epsilon_spent":0.5', '"epsilon_spent":0.0') + "\n" for line in lines)
+    )
+
+    (reply,) = _ask(site, protocol)
+
+    _declined_with(reply, RefusalCode.LEDGER_UNVERIFIED)
+    assert site.entries()[-1]["reason"] == "ledger_unverified"
+    assert site.entries()[-1]["epsilon_spent"] == 0.0

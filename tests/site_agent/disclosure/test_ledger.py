@@ -273,3 +273,42 @@ def test_append_refuses_a_ledger_whose_head_hash_does_not_match(tmp_path: Path) 
 
     with pytest.raises(LedgerError, match="entry 2 differs from the head file"):
         ReleaseLedger(path).append(outcome=Outcome.DECLINED, reason="operation_not_allowed")
+
+
+def test_budget_refuses_a_ledger_whose_spent_epsilon_was_lowered(tmp_path: Path) -> None:
+    """An entry edited to charge ε = 0 makes the budget read raise instead of summing."""
+    path = _filled_ledger(tmp_path)
+    lines = _lines(path)
+    lines[0] = lines[0].replace('"epsilon_spent":0.25', '"epsilon_spent":0.0')
+    _write(path, lines)
+
+    with ReleaseLedger(path).session() as session, pytest.raises(LedgerError, match="entry 1 "):
+        session.epsilon_spent("PNEUMO-EXT-01")
+
+
+def test_budget_refuses_a_rehashed_edit_in_the_middle_of_the_chain(tmp_path: Path) -> None:
+    """Lowering ε and recomputing that entry's hash breaks the next entry's link."""
+    path = _filled_ledger(tmp_path)
+    lines = _lines(path)
+    fields = json.loads(lines[2])
+    fields["epsilon_spent"] = 0.0
+    fields.pop("entry_hash")
+    body = json.dumps(fields, sort_keys=True, separators=(",", ":"))
+    fields["entry_hash"] = hashlib.sha256(body.encode()).hexdigest()
+    lines[2] = json.dumps(fields, sort_keys=True, separators=(",", ":"))
+    _write(path, lines)
+
+    with (
+        ReleaseLedger(path).session() as session,
+        pytest.raises(LedgerError, match="entry 4 does not follow"),
+    ):
+        session.epsilon_spent("PNEUMO-EXT-01")
+
+
+def test_budget_reads_entries_appended_in_the_same_session(tmp_path: Path) -> None:
+    """Entries appended in a session join the verified chain: the sum includes them."""
+    path = _filled_ledger(tmp_path)
+
+    with ReleaseLedger(path).session() as session:
+        session.append(outcome=Outcome.RELEASED, study_id="PNEUMO-EXT-01", epsilon_spent=0.25)
+        assert session.epsilon_spent("PNEUMO-EXT-01") == pytest.approx(0.75)

@@ -1,0 +1,103 @@
+"""Benchmark of score resolution: what released bins cost the AUCs, on the default rehearsal.
+
+Run with ``python -m simulations.benchmarks.resolution [--scales logit80,uniform40]``.
+For each score scale it runs the default rehearsal scenario (invented hospitals, in-process
+engine) and prints, per site, the exact AUC, the AUC from the site's released (merged)
+bins, their distance, the ROC points the released bins give; and, for all cases as one
+cohort, the estimate from released bins, its worst-case binning bound, the true value
+computed from every simulated case (simulation only: no study can know it) and the error.
+
+Targets (issue 12): every site within 0.01, one-cohort bound <= 0.02, one-cohort actual
+error <= 0.002. The table says which hold. Figures belong in the README, never in tests.
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+from pathlib import Path
+
+from simulations.rehearsal import HISTOGRAM_BINS, rehearse
+from simulations.scenario import default_scenario
+from site_agent.contract.protocol import uniform_edges
+from site_agent.contract.score_scales import logit_edges
+from site_agent.notices import RESEARCH_NOTICE
+
+SITE_TOLERANCE = 0.01
+BOUND_TARGET = 0.02
+ERROR_TARGET = 0.002
+
+SCALES: dict[str, tuple[float, ...] | None] = {
+    f"logit{HISTOGRAM_BINS}": logit_edges(HISTOGRAM_BINS),
+    "devquantiles": None,
+    "uniform40": uniform_edges(40),
+    "uniform100": uniform_edges(100),
+}
+"""Score scales the benchmark can compare: the default, the development site's training
+score quantiles (None: computed in the rehearsal), and equal bins on [0, 1]."""
+
+
+def _verdict(ok: bool) -> str:
+    return "meets" if ok else "MISSES"
+
+
+def run_scale(name: str, edges: tuple[float, ...] | None, work: Path) -> None:
+    """Rehearse the default scenario with ``edges`` and print the table for it."""
+    output = rehearse(
+        default_scenario(),
+        work / name,
+        histogram_edges=edges,
+        score_bins="logit" if edges is not None else "development-quantiles",
+    )
+    results = output.results
+    print(f"\n== {name} ==")
+    print(f"{'site':<28} {'exact':>7} {'bins':>7} {'|diff|':>7} {'ROC pts':>7}")
+    worst = 0.0
+    for site in results.sites:
+        rows = {
+            m.method: m
+            for m in results.metrics
+            if m.site == site.site and m.metric == "auc" and m.subgroup is None
+        }
+        if "delong" not in rows or "histogram" not in rows:
+            continue
+        diff = abs(rows["histogram"].estimate - rows["delong"].estimate)
+        worst = max(worst, diff)
+        roc = [c for c in results.curves if c.site == site.site and c.kind == "roc"]
+        points = len(set(zip(roc[0].x, roc[0].y, strict=True))) if roc else 0
+        print(
+            f"{site.site:<28} {rows['delong'].estimate:7.4f} "
+            f"{rows['histogram'].estimate:7.4f} {diff:7.4f} {points:7d}"
+        )
+    print(f"worst site distance {worst:.4f}: {_verdict(worst <= SITE_TOLERANCE)} <= 0.01")
+    for check in results.simulation_checks:
+        bound = check.bound if check.bound is not None else float("nan")
+        print(
+            f"one cohort: estimate {check.estimate:.4f}, bound ±{bound:.4f} "
+            f"({_verdict(bound <= BOUND_TARGET)} <= {BOUND_TARGET}), "
+            f"true {check.true_value:.4f} (simulation only), error {check.error:+.4f} "
+            f"({_verdict(abs(check.error) <= ERROR_TARGET)} <= {ERROR_TARGET})"
+        )
+
+
+def main() -> None:
+    """Run the benchmark and print its tables."""
+    parser = argparse.ArgumentParser(description=f"Score resolution benchmark. {RESEARCH_NOTICE}")
+    parser.add_argument(
+        "--scales",
+        default=f"logit{HISTOGRAM_BINS},uniform40",
+        help=f"Comma-separated scales from: {', '.join(SCALES)}.",
+    )
+    args = parser.parse_args()
+    names = [s.strip() for s in args.scales.split(",") if s.strip()]
+    unknown = [n for n in names if n not in SCALES]
+    if unknown:
+        parser.error(f"unknown scale(s): {', '.join(unknown)}")
+    with tempfile.TemporaryDirectory() as tmp:
+        for name in names:
+            run_scale(name, SCALES[name], Path(tmp))
+    print(f"\n{RESEARCH_NOTICE}")
+
+
+if __name__ == "__main__":
+    main()
