@@ -87,6 +87,9 @@ class SyntheticSite:
             parts.append(f"shape smoothing {acq.shape_smoothing:g}")
         if acq.noise_sd:
             parts.append(f"measurement noise {acq.noise_sd:g} SD")
+        if acq.corruption_sd:
+            which = ", ".join(f"'{f}'" for f in acq.corrupted_features)
+            parts.append(f"unreliable {which} features (log-scale error SD {acq.corruption_sd:g})")
         if self.n_resampled:
             parts.append(f"{self.n_resampled} resampled cases")
         return "; ".join(parts)

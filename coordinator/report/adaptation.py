@@ -127,6 +127,7 @@ def adaptation_section(results: StudyResults) -> str:
     ]
     if results.adaptation:
         parts.append(f"<figure>{adaptation_curves_svg(results)}</figure>")
+        parts.append(_shift_descriptions(results))
     changes = [r for r in results.adaptation if r.metric == AUC_CHANGE]
     if changes:
         rows = "".join(
@@ -166,6 +167,25 @@ def adaptation_section(results: StudyResults) -> str:
             f"<th>95% CI</th><th>method</th></tr></thead><tbody>{rows}</tbody></table>"
         )
     return "".join(parts)
+
+
+def _shift_descriptions(results: StudyResults) -> str:
+    """List how each adapted site differs from the development site, as it was described.
+
+    A curve that rises over many cases means the site's shift destroyed information the
+    model relied on; one that is flat after a few cases means a refit undid the shift.
+    """
+    adapted = {r.site for r in results.adaptation}
+    described = [s for s in results.sites if s.site in adapted and s.description]
+    if not described:
+        return ""
+    items = "".join(f"<li>{_e(s.site)}: {_e(s.description)}</li>" for s in described)
+    return (
+        "<p>What each site's curve responds to, as the site is described: shifts of gain "
+        "and offset are undone by a refit on a few cases; unreliable features and "
+        "measurement noise destroy information, so the curve keeps rising over tens to "
+        f"hundreds of cases.</p><ul>{items}</ul>"
+    )
 
 
 def _signed(value: float) -> str:
