@@ -121,7 +121,8 @@ def adaptation_section(results: StudyResults) -> str:
         "<p>Sites fine-tuned the model on increasing numbers of their own cases, drawn by "
         "whole patients from a local training pool, and measured it on a held-out local test "
         "set that training never saw. Each point is the mean over seeds on the logit scale "
-        "with a Rubin interval (within-seed and between-seed variance); the pooled panel is "
+        "with a Rubin interval (within-seed and between-seed variance; where a seed reached "
+        "an AUC of exactly 1, on the AUC scale with the interval cut at 1); the pooled panel is "
         "the mean of the sites' logits. The dashed line is the development site's AUC minus "
         "the margin.</p>"
     ]
