@@ -15,8 +15,8 @@ import torch
 from sklearn.metrics import roc_auc_score
 
 from simulations.dataset import load_public_dataset
-from simulations.rehearsal import REHEARSAL_ADAPTATION
 from simulations.development import develop_model
+from simulations.rehearsal import REHEARSAL_ADAPTATION
 from simulations.scenario import default_scenario
 from simulations.sites import build_sites, development_split
 from site_agent.statistics.roc import paired_delong

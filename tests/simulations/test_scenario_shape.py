@@ -79,7 +79,7 @@ def test_external_calibration_is_off_but_not_total(run: tuple[StudyResults, Path
 
 def test_no_site_has_all_scores_saturated(run: tuple[StudyResults, Path]) -> None:
     """At every site at least a fifth of the model's scores lie inside (0.01, 0.99)."""
-    results, out = run
+    _, out = run
     bundle = load_bundle(out / "model" / "model-bundle.zip")
     for spec in default_scenario().sites:
         scores = bundle.predict(pd.read_csv(out / "site-data" / spec.slug / "cases.csv"))
