@@ -62,22 +62,25 @@ from coordinator.monitoring.control_charts import (
     DEFAULT_EWMA_WIDTH,
     CusumResult,
     EwmaResult,
-    cusum_chart,
     cusum_chart_proportion,
-    ewma_chart,
     ewma_chart_proportion,
+    self_starting_cusum,
+    self_starting_ewma,
 )
 from coordinator.monitoring.drift import (
-    DEFAULT_P_THRESHOLDS,
-    DEFAULT_PSI_THRESHOLDS,
     DEFAULT_TVD_THRESHOLDS,
     DriftLevel,
-    binned_ks,
     category_chi_square,
-    population_stability_index,
     total_variation_distance,
 )
 from coordinator.monitoring.results_store import WindowRecord
+from coordinator.monitoring.window_null import (
+    DEFAULT_SHIFT_ALPHA,
+    DEFAULT_WATCH_ALPHA,
+    Dispersion,
+    baseline_dispersion,
+    label_free_drift,
+)
 from site_agent.contract.protocol import DEFAULT_BASELINE_WINDOWS
 from site_agent.contract.release import SiteRelease
 from site_agent.exceptions import InputError
@@ -122,8 +125,14 @@ class DriftSettings(_Model):
     cusum_h: float = DEFAULT_CUSUM_H
     ewma_lambda: float = DEFAULT_EWMA_LAMBDA
     ewma_width: float = DEFAULT_EWMA_WIDTH
-    psi_thresholds: tuple[float, float] = DEFAULT_PSI_THRESHOLDS
-    p_thresholds: tuple[float, float] = DEFAULT_P_THRESHOLDS
+    psi_thresholds: tuple[float, float] | None = Field(
+        default=None,
+        description=(
+            "Fixed PSI limits (watch, shifted); None: limits from the window sizes and the "
+            "baseline's dispersion (coordinator.monitoring.window_null)."
+        ),
+    )
+    p_thresholds: tuple[float, float] = (DEFAULT_WATCH_ALPHA, DEFAULT_SHIFT_ALPHA)
     tvd_thresholds: tuple[float, float] = DEFAULT_TVD_THRESHOLDS
 
 
@@ -327,6 +336,9 @@ def _analyse_site(
     notes: list[str] = []
     base_hist = _merged_histogram([r.statistics.histogram for r in baseline])
     base_mix = _mix_counts(baseline, settings.mix_attribute)
+    dispersion = _dispersion(baseline, base_hist)
+    base_total = sum(r.statistics.n_observations for r in baseline)
+    base_capacity = _baseline_capacity(baseline, base_hist)
     if not baseline:
         notes.append("no baseline window was released: drift is undetermined at this site")
     rows: list[dict[str, object]] = []
@@ -346,7 +358,11 @@ def _analyse_site(
         row.update(_counts_row(release, threshold, settings.mix_attribute))
         row["revisions"] = revisions.get((start, end), 0)
         if index >= n_base and base_hist is not None:
-            row.update(_label_free_row(release, base_hist, base_mix, settings))
+            row.update(
+                _label_free_row(
+                    release, base_hist, base_mix, settings, dispersion, base_total, base_capacity
+                )
+            )
             for metric, method, key, level in (
                 (SCORE_DISTRIBUTION, "psi", "psi", "psi_level"),
                 (SCORE_DISTRIBUTION, "ks", "ks_distance", "ks_level"),
@@ -461,11 +477,60 @@ def _counts_row(
     return row
 
 
+def _capacity(histogram: ScoreHistogram, total: int) -> list[float]:
+    """Most suppressed cases each bin can hold: all of them where a row reads 0, else 0.
+
+    A suppressed cell reads 0 in its row (positive, negative or pending); a bin with no
+    zero cell lost nothing to suppression.
+    """
+    missing = max(0, total - sum(histogram.all))
+    pending = [
+        a - p - n
+        for a, p, n in zip(histogram.all, histogram.positive, histogram.negative, strict=True)
+    ]
+    rows = (histogram.positive, histogram.negative, pending)
+    return [float(missing) if any(r[i] == 0 for r in rows) else 0.0 for i in range(len(pending))]
+
+
+def _baseline_capacity(
+    baseline: list[SiteRelease], base_hist: ScoreHistogram | None
+) -> list[float] | None:
+    """Per bin, the suppressed baseline cases it can hold, summed over the baseline windows."""
+    if base_hist is None:
+        return None
+    total = [0.0] * (len(base_hist.edges) - 1)
+    for release in baseline:
+        histogram = release.statistics.histogram
+        if tuple(histogram.edges) != tuple(base_hist.edges):
+            return None
+        cap = _capacity(histogram, release.statistics.n_observations)
+        total = [t + c for t, c in zip(total, cap, strict=True)]
+    return total
+
+
+def _dispersion(baseline: list[SiteRelease], base_hist: ScoreHistogram | None) -> Dispersion:
+    """Dispersion of the baseline windows' score histograms on the PSI bands (window_null)."""
+    if base_hist is None:
+        return Dispersion(1.0, math.inf, 0, "no baseline histogram")
+    bands = _bands(base_hist.all, PSI_BAND_SHARE)
+    windows, totals = [], []
+    for release in baseline:
+        if tuple(release.statistics.histogram.edges) != tuple(base_hist.edges):
+            continue  # a window on other edges cannot be put on the baseline's bands
+        counts = release.statistics.histogram.all
+        windows.append([sum(counts[a:b]) for a, b in bands])
+        totals.append(max(release.statistics.n_observations, sum(counts)))
+    return baseline_dispersion(windows, totals)
+
+
 def _label_free_row(
     release: SiteRelease,
     base_hist: ScoreHistogram,
     base_mix: dict[str, int] | None,
     settings: DriftSettings,
+    dispersion: Dispersion,
+    base_total: int,
+    base_capacity: list[float] | None,
 ) -> dict[str, object]:
     row: dict[str, object] = {}
     notes: list[str] = []
@@ -475,21 +540,30 @@ def _label_free_row(
         notes.append("the window and the baseline share fewer than two score bins")
     else:
         ref, cur = base_hist.coarsened(edges).all, current.coarsened(edges).all
-        bands = _bands(ref, PSI_BAND_SHARE)
-        psi = population_stability_index(
-            [sum(ref[a:b]) for a, b in bands],
-            [sum(cur[a:b]) for a, b in bands],
-            thresholds=settings.psi_thresholds,
-        )
-        ks = binned_ks(ref, cur, thresholds=settings.p_thresholds)
-        row.update(
-            psi=_finite(psi.psi),
-            psi_level=psi.level,
-            ks_distance=_finite(ks.distance),
-            ks_p_value=_finite(ks.p_value),
-            ks_level=ks.level,
-        )
-        notes.extend(r for r in (psi.reason, ks.reason) if r)
+        # Cases in suppressed cells are unknown: judge the bound closest to the baseline.
+        ref_total = max(base_total, sum(ref))
+        cur_total = max(release.statistics.n_observations, sum(cur))
+        same = tuple(edges) == tuple(current.edges) == tuple(base_hist.edges)
+        if sum(ref) and sum(cur):
+            drift = label_free_drift(
+                ref, ref_total, cur, cur_total, dispersion,
+                p_thresholds=settings.p_thresholds,
+                fixed_psi_limits=settings.psi_thresholds,
+                bands=_bands(ref, PSI_BAND_SHARE),
+                reference_capacity=base_capacity if same else None,
+                current_capacity=_capacity(current, cur_total) if same else None,
+            )  # fmt: skip
+            row.update(
+                psi=_finite(drift.psi),
+                psi_level=drift.psi_level,
+                ks_distance=_finite(drift.ks_distance),
+                ks_p_value=_finite(drift.ks_p_value),
+                ks_level=drift.ks_level,
+            )
+            if drift.bounded:
+                notes.append("suppressed cells: PSI and KS are lower bounds")
+        else:
+            notes.append("a window holds no cases")
     mix = _attribute_counts(release, settings.mix_attribute)
     if base_mix and mix:
         chi = category_chi_square(base_mix, mix, thresholds=settings.p_thresholds)
@@ -569,28 +643,20 @@ def _charts(
             ),
         )  # fmt: skip
     auc = np.array([_num(r.get("auc")) for r in rows])
-    se = np.array([_num(r.get("auc_se")) for r in rows])
-    base = np.isfinite(auc[:n_base]) & np.isfinite(se[:n_base]) & (se[:n_base] > 0)
-    if base.any():
-        weights = 1.0 / se[:n_base][base] ** 2
-        # Inverse-variance weighted (fixed-effect) mean of the baseline AUCs and its variance.
-        target = float(np.sum(weights * auc[:n_base][base]) / np.sum(weights))
-        target_var = float(1.0 / np.sum(weights))
-        targets[AUC] = target
-        se_total = np.sqrt(se[n_base:] ** 2 + target_var)
+    base = np.isfinite(auc[:n_base])
+    if base.sum() >= 2:
+        # Hawkins (1987) self-starting charts: the in-control mean and SD of the window
+        # AUCs are re-estimated from every earlier window, their uncertainty in a t law.
+        targets[AUC] = float(np.mean(auc[:n_base][base]))
         charts[AUC] = (
-            cusum_chart(
-                auc[n_base:], se_total, target=target, k=settings.cusum_k, h=settings.cusum_h,
-                side="lower",
+            self_starting_cusum(auc, n_base, k=settings.cusum_k, h=settings.cusum_h, side="lower"),
+            self_starting_ewma(
+                auc, n_base, lam=settings.ewma_lambda, width=settings.ewma_width, side="lower"
             ),
-            ewma_chart(
-                auc[n_base:], se_total, target=target, lam=settings.ewma_lambda,
-                width=settings.ewma_width, side="lower",
-            ),
-        )  # fmt: skip
+        )
     else:
         targets[AUC] = None
-        notes.append("auc: no baseline window has an AUC with a standard error")
+        notes.append("auc: fewer than two baseline windows have an AUC")
     limits: dict[str, float] = {"cusum_h": settings.cusum_h}
     for name, (cusum, ewma) in charts.items():
         limits["ewma_limit"] = ewma.control_limit
