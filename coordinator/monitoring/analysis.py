@@ -477,19 +477,24 @@ def _counts_row(
     return row
 
 
-def _capacity(histogram: ScoreHistogram, total: int) -> list[float]:
-    """Most suppressed cases each bin can hold: all of them where a row reads 0, else 0.
+def _capacity(release: SiteRelease) -> list[float]:
+    """Most suppressed cases each bin of a window's histogram can hold.
 
-    A suppressed cell reads 0 in its row (positive, negative or pending); a bin with no
-    zero cell lost nothing to suppression.
+    A suppressed cell reads 0 in its row (positive, negative or pending), and each row's
+    total is released, so a bin can hold at most, summed over its rows that read 0, what
+    that row is missing; a bin with no zero cell lost nothing to suppression.
     """
-    missing = max(0, total - sum(histogram.all))
-    pending = [
-        a - p - n
-        for a, p, n in zip(histogram.all, histogram.positive, histogram.negative, strict=True)
+    stats = release.statistics
+    h = stats.histogram
+    pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
+    rows = (
+        (h.positive, stats.n_positive - sum(h.positive)),
+        (h.negative, stats.n_negative - sum(h.negative)),
+        (pending, stats.n_pending - sum(pending)),
+    )
+    return [
+        float(sum(max(0, lost) for row, lost in rows if row[i] == 0)) for i in range(len(pending))
     ]
-    rows = (histogram.positive, histogram.negative, pending)
-    return [float(missing) if any(r[i] == 0 for r in rows) else 0.0 for i in range(len(pending))]
 
 
 def _baseline_capacity(
@@ -503,7 +508,7 @@ def _baseline_capacity(
         histogram = release.statistics.histogram
         if tuple(histogram.edges) != tuple(base_hist.edges):
             return None
-        cap = _capacity(histogram, release.statistics.n_observations)
+        cap = _capacity(release)
         total = [t + c for t, c in zip(total, cap, strict=True)]
     return total
 
@@ -551,7 +556,7 @@ def _label_free_row(
                 fixed_psi_limits=settings.psi_thresholds,
                 bands=_bands(ref, PSI_BAND_SHARE),
                 reference_capacity=base_capacity if same else None,
-                current_capacity=_capacity(current, cur_total) if same else None,
+                current_capacity=_capacity(release) if same else None,
             )  # fmt: skip
             row.update(
                 psi=_finite(drift.psi),
