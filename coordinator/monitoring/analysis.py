@@ -150,6 +150,7 @@ class WindowDrift(_Model):
     label_completeness: float | None = None
     revisions: int = Field(default=0, description="Times the stored release was replaced.")
     psi: float | None = None
+    psi_limit: float | None = Field(default=None, description="PSI at which it reads shifted.")
     psi_level: DriftLevel = DriftLevel.UNDETERMINED
     ks_distance: float | None = None
     ks_p_value: float | None = None
@@ -560,6 +561,7 @@ def _label_free_row(
             )  # fmt: skip
             row.update(
                 psi=_finite(drift.psi),
+                psi_limit=_finite(drift.psi_limits[1]),
                 psi_level=drift.psi_level,
                 ks_distance=_finite(drift.ks_distance),
                 ks_p_value=_finite(drift.ks_p_value),
