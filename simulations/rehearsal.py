@@ -274,8 +274,9 @@ def _notes(sites: list[SyntheticSite]) -> list[str]:
             + ", ".join(corrupted)
             + " the scenario makes some features unreliable (a multiplicative error per "
             "case), which a refit on a few cases cannot undo; fine-tuning has to shift the "
-            "model's weight to other features, so the curves rise over tens to about a "
-            "hundred local cases, more where more features are affected."
+            "model's weight to other features. Where that costs the model much AUC, the "
+            "curve keeps rising over tens to about a hundred local cases, more where more "
+            "features are affected; where it costs little, no local cases are needed."
         )
     for site in sites:
         if site.n_resampled:
