@@ -147,7 +147,7 @@ def test_jitter_perturbs_only_resampled_rows_by_the_stated_fraction() -> None:
 
 
 def test_feature_corruption_is_a_mean_preserving_log_normal_error_on_named_columns() -> None:
-    """x * exp(s e - s^2/2): log-ratio SD s, mean kept, other columns untouched.
+    """Values times exp(s e - s^2/2): log-ratio SD s, mean kept, other columns untouched.
 
     Reference: the log-normal mean exp(mu + s^2/2) (common practice); the SD of the log
     ratio is checked with scipy.stats.chi2 bounds on a sample variance.
