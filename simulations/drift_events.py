@@ -6,7 +6,8 @@ given month on: a new scanner (acquisition shift and vendor mix) or a different 
 event in month order, builds the changed site (same generator stream, changed spec) and
 keeps the original cases acquired before the event's month and the changed site's cases
 from that month on. Case and patient ids of the later part get a suffix, so no id is
-shared between the two parts.
+shared between the two parts, and the site's count of resampled duplicates is that of the
+rows it keeps from each part (not the sum of both whole tables).
 
 :func:`with_pending_labels` writes a site's table as it stands on a given day: the label
 of every case acquired in the ``pending_label_months`` months before that day is blank,
@@ -65,14 +66,19 @@ def build_drifting_sites(scenario: Scenario, dataset: FeatureTable) -> list[Synt
         cutoff = event_start(scenario, event).strftime("%Y-%m-%d")
         before = sites[i].table[sites[i].table["acquired_on"] < cutoff]
         after = changed.table[changed.table["acquired_on"] >= cutoff].copy()
+        # Count only the duplicates each part keeps: the site's whole table and the
+        # changed site's whole table each hold their own, but only one part of each is used.
+        kept = {c for c in before["case_id"] if c in sites[i].resampled_ids}
+        kept |= {f"{c}-E{number}" for c in after["case_id"] if c in changed.resampled_ids}
         after["case_id"] = after["case_id"] + f"-E{number}"
         after["patient_id"] = after["patient_id"] + f"-E{number}"
         table = pd.concat([before, after], ignore_index=True)
         sites[i] = dataclasses.replace(
             sites[i],
             table=table,
-            n_resampled=sites[i].n_resampled + changed.n_resampled,
+            n_resampled=len(kept),
             spec=specs[i],
+            resampled_ids=frozenset(kept),
         )
     return sites
 

@@ -86,6 +86,30 @@ class AcquisitionShift(_Model):
         lt=1.0,
         description="Fraction by which shape features are pulled toward their mean.",
     )
+    corrupted_features: tuple[str, ...] = Field(
+        default=(),
+        max_length=30,
+        description=(
+            "Name fragments (e.g. 'worst', 'concave') of feature columns that this site's "
+            "software computes unreliably; each matching column gets its own multiplicative error."
+        ),
+    )
+    corruption_sd: float = Field(
+        default=0.0,
+        ge=0.0,
+        le=10.0,
+        description=(
+            "SD of the log of a multiplicative error on corrupted features (0.5: values "
+            "typically off by a factor of 0.6 to 1.6). Unlike gain and offset, no refit on a "
+            "few cases can undo it: a model must learn to lean on other features instead."
+        ),
+    )
+
+    @model_validator(mode="after")
+    def _corruption_named(self) -> AcquisitionShift:
+        if self.corruption_sd > 0 and not self.corrupted_features:
+            raise ValueError("corruption_sd needs corrupted_features to name the columns")
+        return self
 
 
 class SiteSpec(_Model):

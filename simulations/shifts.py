@@ -19,12 +19,20 @@ reference mean and SD of feature ``j`` and ``e`` standard normal noise, in this 
 1. intensity-like features: ``x <- intensity_gain * x + intensity_offset * s_j``;
 2. texture-like features: ``x <- texture_gain * x``;
 3. shape-like features: ``x <- m_j + (1 - shape_smoothing) * (x - m_j)``;
-4. every feature: ``x <- x + noise_sd * s_j * e`` (measurement noise).
+4. every feature: ``x <- x + noise_sd * s_j * e`` (measurement noise);
+5. corrupted features (columns whose name contains one of ``corrupted_features``):
+   ``x <- x * exp(corruption_sd * e' - corruption_sd**2 / 2)`` with fresh noise ``e'``,
+   a multiplicative (log-normal) error that keeps each feature's mean and sign.
 
 Features that are non-negative in the reference (all WDBC features) are clipped at 0 after
 noise, since a size or a count cannot be negative. Gain and offset model a scanner's
 calibration, texture gain a sharpening or blurring kernel, shape smoothing a
 lower-resolution contour, noise a noisier detector; none is fitted to real scanners.
+Steps 1-3 are affine per feature, so a model refitted on a handful of the site's labelled
+cases can largely undo them. Step 5 is *site-specific feature corruption*, e.g. a
+segmentation pipeline whose extreme-value ("worst") measurements are unstable: it destroys
+information in some features, so adaptation must learn new weights for the others, which
+takes tens to hundreds of cases rather than ten.
 
 When a site asks for more cases of a class than the pool holds, every pool case of that
 class is taken once (by the weights, without replacement) and the remainder is drawn with
@@ -246,7 +254,17 @@ def apply_acquisition_shift(
         noise = rng.standard_normal(out.shape) * shift.noise_sd * sds
         out.loc[:, :] = out.to_numpy(dtype=np.float64) + noise
         out = _clip_non_negative(out, reference)
+    corrupted = corrupted_columns(tuple(str(c) for c in out.columns), shift.corrupted_features)
+    if corrupted and shift.corruption_sd > 0:
+        sigma = shift.corruption_sd
+        error = np.exp(sigma * rng.standard_normal((len(out), len(corrupted))) - sigma**2 / 2)
+        out[corrupted] = out[corrupted].to_numpy(dtype=np.float64) * error
     return out
+
+
+def corrupted_columns(columns: tuple[str, ...], fragments: tuple[str, ...]) -> list[str]:
+    """Return the columns whose name contains any of ``fragments`` (step 5), in order."""
+    return [c for c in columns if any(f in c for f in fragments)]
 
 
 def _clip_non_negative(features: pd.DataFrame, reference: ReferenceStats) -> pd.DataFrame:

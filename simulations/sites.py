@@ -60,6 +60,9 @@ class SyntheticSite:
         The scenario entry the site was built from (its shifts and case mix).
     is_development
         Whether this is where the model is developed.
+    resampled_ids
+        ``case_id`` of every resampled row, so that a table cut in time (a drift event)
+        can count the duplicates it keeps.
     """
 
     name: str
@@ -68,6 +71,7 @@ class SyntheticSite:
     n_resampled: int
     spec: SiteSpec
     is_development: bool
+    resampled_ids: frozenset[str] = frozenset()
 
     @property
     def shift_description(self) -> str:
@@ -87,6 +91,9 @@ class SyntheticSite:
             parts.append(f"shape smoothing {acq.shape_smoothing:g}")
         if acq.noise_sd:
             parts.append(f"measurement noise {acq.noise_sd:g} SD")
+        if acq.corruption_sd:
+            which = ", ".join(f"'{f}'" for f in acq.corrupted_features)
+            parts.append(f"unreliable {which} features (log-scale error SD {acq.corruption_sd:g})")
         if self.n_resampled:
             parts.append(f"{self.n_resampled} resampled cases")
         return "; ".join(parts)
@@ -239,6 +246,7 @@ def _build_site(
             "sex": sex,
             "age_band": age_band,
             **reader_columns(labels, spec.readers, rng),
+            "_resampled": sample.resampled,
         }
     )
     table = pd.concat([table, features], axis=1)
@@ -253,7 +261,8 @@ def _build_site(
         "patient_id",
         [f"{code}-P{first_seen[p] + 1:0{width}d}" for p in table["patient_index"]],
     )
-    table = table.drop(columns="patient_index")
+    resampled_ids = frozenset(table.loc[table["_resampled"], "case_id"])
+    table = table.drop(columns=["patient_index", "_resampled"])
     table["acquired_on"] = table["acquired_on"].dt.strftime("%Y-%m-%d")
     return SyntheticSite(
         name=spec.name,
@@ -262,6 +271,7 @@ def _build_site(
         n_resampled=sample.n_resampled,
         spec=spec,
         is_development=is_development,
+        resampled_ids=resampled_ids,
     )
 
 

@@ -97,6 +97,61 @@ def combine_differences(
     return Combined(q_bar, q_bar - half, q_bar + half, q_bar, total, df, m)
 
 
+def combine_auc_over_seeds(
+    records: Sequence[AucRecord], confidence: float = 0.95
+) -> tuple[Combined, str]:
+    """Combine the seeds' AUCs: on the logit scale, or on the AUC scale when a seed is at 0 or 1.
+
+    While every seed's AUC lies strictly inside (0, 1) this is :func:`combine_over_seeds`
+    on :func:`auc_logit` (method ``"rubin-logit"``). A seed whose AUC is exactly 1 (or 0)
+    has no finite logit: the half-pair correction puts it at ``log(2·P·N)``, a value set by
+    the sample size rather than the data, and the between-seed variance it creates can
+    stretch the interval down to 0. Then Rubin's rules run on the AUC scale itself, each
+    seed with its DeLong variance (Hanley-McNeil at the half-pair-corrected value where
+    DeLong's is 0, as in :func:`auc_logit`), and the interval is truncated to [0, 1]
+    (method ``"rubin-auc-truncated"``): its bound at 1 is a bound, not an estimate. The
+    returned ``logit`` and ``variance`` are the delta-method transforms of that mean, so
+    the pooled mean over sites (:func:`combine_over_sites`) still applies.
+
+    References
+    ----------
+    D.B. Rubin (1987). Multiple imputation for nonresponse in surveys. Wiley. Section 3.1.
+    J.A. Hanley, B.J. McNeil (1982). Radiology 143:29-36, equation (1).
+    """
+    defined = [r for r in records if r.auc is not None and r.n_positive and r.n_negative]
+    if all(r.auc is not None and 0.0 < r.auc < 1.0 for r in defined):
+        pairs = [auc_logit(r) for r in records]
+        logit_method = combine_over_seeds([a for a, _ in pairs], [b for _, b in pairs], confidence)
+        return logit_method, "rubin-logit"
+    values = [float(r.auc) for r in defined if r.auc is not None]
+    variances = [_auc_variance(r) for r in defined]
+    pooled = _rubin(values, variances, confidence)
+    assert pooled is not None  # at least one seed is defined on this branch
+    q_bar, total, df, half, m = pooled
+    pairs_min = min(r.n_positive * r.n_negative for r in defined)
+    a = min(max(q_bar, 0.5 / pairs_min), 1.0 - 0.5 / pairs_min)
+    combined = Combined(
+        q_bar,
+        max(0.0, q_bar - half),
+        min(1.0, q_bar + half),
+        math.log(a / (1.0 - a)),
+        total / (a * (1.0 - a)) ** 2,  # delta method, as in auc_logit
+        df,
+        m,
+    )
+    return combined, "rubin-auc-truncated"
+
+
+def _auc_variance(record: AucRecord) -> float:
+    """DeLong's variance, or Hanley-McNeil's at the half-pair-corrected AUC where it is 0."""
+    if record.variance:
+        return float(record.variance)
+    assert record.auc is not None  # callers pass defined records only
+    pairs = record.n_positive * record.n_negative
+    a = min(max(record.auc, 0.5 / pairs), 1.0 - 0.5 / pairs)
+    return float(hanley_mcneil_se(a, record.n_positive, record.n_negative) ** 2)
+
+
 def _rubin(
     estimates: Sequence[float], variances: Sequence[float], confidence: float
 ) -> tuple[float, float, float, float, int] | None:

@@ -7,7 +7,9 @@
   Rubin's rules on the logit scale
   (:func:`~coordinator.adaptation.combination.combine_over_seeds`): the mean of the seeds'
   logits, with a variance that adds the mean within-seed variance (DeLong for the AUC,
-  binomial for sensitivity and specificity) and the between-seed variance;
+  binomial for sensitivity and specificity) and the between-seed variance; where a seed's
+  AUC is exactly 0 or 1 the AUC is combined on its own scale and the interval truncated to
+  [0, 1] (:func:`~coordinator.adaptation.combination.combine_auc_over_seeds`);
 - pooled across sites, the *mean of the sites' logit estimates* with every site weighted
   equally; its interval treats the sites as fixed (it describes these sites, not a new
   one; the random-effects analysis of the evaluation round speaks to new sites);
@@ -35,6 +37,7 @@ import numpy as np
 
 from coordinator.adaptation.combination import (
     Combined,
+    combine_auc_over_seeds,
     combine_differences,
     combine_over_seeds,
     combine_over_sites,
@@ -75,8 +78,12 @@ def site_rows(
     for metric, threshold in _metric_keys(thresholds):
         for n in counts:
             points = [p for p in release.points if p.n_requested == n]
-            pairs = [metric_logit(p.after, metric, threshold) for p in points]
-            c = combine_over_seeds([a for a, _ in pairs], [b for _, b in pairs], confidence)
+            if metric == "auc":
+                c, method = combine_auc_over_seeds([p.after.auc for p in points], confidence)
+            else:
+                pairs = [metric_logit(p.after, metric, threshold) for p in points]
+                c = combine_over_seeds([a for a, _ in pairs], [b for _, b in pairs], confidence)
+                method = "rubin-logit"
             raw = [
                 v for v in (_raw(p.after, metric, threshold) for p in points) if math.isfinite(v)
             ]
@@ -94,6 +101,7 @@ def site_rows(
                     seed_max=max(raw) if raw else math.nan,
                     repeats=len(points),
                     threshold=threshold,
+                    method=method,
                     reason=c.reason,
                 )
             )

@@ -2,10 +2,10 @@
 
 Sensitivity and specificity at one threshold (successes out of trials; pending labels are
 in neither) run through standardized binomial CUSUM and EWMA charts
-(:mod:`coordinator.monitoring.control_charts`), and each window's DeLong AUC with its
-standard error through the normal CUSUM and EWMA charts. Targets come from the baseline
-windows: the pooled proportion, and the inverse-variance weighted mean AUC, whose variance
-is added to each window's (Jones, Champ & Rigdon 2004 on estimated targets). Charts watch
+(:mod:`coordinator.monitoring.control_charts`), and each window's AUC through self-starting
+CUSUM and EWMA charts (Hawkins 1987), whose in-control mean and spread are re-estimated from
+the windows before each one. Proportion targets come from the baseline windows' pooled
+proportion (Jones, Champ & Rigdon 2004 on estimated targets). Charts watch
 for a fall (``side="lower"``) and start after the baseline.
 
 A site's disclosure step may censor a small confusion cell; :func:`usable_counts` then
@@ -13,6 +13,8 @@ drops the proportion resting on it for that window.
 
 References
 ----------
+Hawkins DM (1987). Self-starting CUSUM charts for location and scale. The Statistician
+36:299–316. doi:10.2307/2348827
 Page ES (1954). Continuous inspection schemes. Biometrika 41:100–115.
 doi:10.1093/biomet/41.1-2.100
 Roberts SW (1959). Control chart tests based on geometric moving averages.
@@ -35,10 +37,10 @@ import numpy as np
 from coordinator.monitoring.control_charts import (
     CusumResult,
     EwmaResult,
-    cusum_chart,
     cusum_chart_proportion,
-    ewma_chart,
     ewma_chart_proportion,
+    self_starting_cusum,
+    self_starting_ewma,
 )
 from coordinator.monitoring.findings import (
     AUC,
@@ -116,28 +118,20 @@ def chart_site(
             ),
         )  # fmt: skip
     auc = np.array([_num(r.get("auc")) for r in rows])
-    se = np.array([_num(r.get("auc_se")) for r in rows])
-    base = np.isfinite(auc[:n_base]) & np.isfinite(se[:n_base]) & (se[:n_base] > 0)
-    if base.any():
-        weights = 1.0 / se[:n_base][base] ** 2
-        # Inverse-variance weighted (fixed-effect) mean of the baseline AUCs and its variance.
-        target = float(np.sum(weights * auc[:n_base][base]) / np.sum(weights))
-        target_var = float(1.0 / np.sum(weights))
-        targets[AUC] = target
-        se_total = np.sqrt(se[n_base:] ** 2 + target_var)
+    base = np.isfinite(auc[:n_base])
+    if base.sum() >= 2:
+        # Hawkins (1987) self-starting charts: the in-control mean and SD of the window
+        # AUCs are re-estimated from every earlier window, their uncertainty in a t law.
+        targets[AUC] = float(np.mean(auc[:n_base][base]))
         charts[AUC] = (
-            cusum_chart(
-                auc[n_base:], se_total, target=target, k=settings.cusum_k, h=settings.cusum_h,
-                side="lower",
+            self_starting_cusum(auc, n_base, k=settings.cusum_k, h=settings.cusum_h, side="lower"),
+            self_starting_ewma(
+                auc, n_base, lam=settings.ewma_lambda, width=settings.ewma_width, side="lower"
             ),
-            ewma_chart(
-                auc[n_base:], se_total, target=target, lam=settings.ewma_lambda,
-                width=settings.ewma_width, side="lower",
-            ),
-        )  # fmt: skip
+        )
     else:
         targets[AUC] = None
-        notes.append("auc: no baseline window has an AUC with a standard error")
+        notes.append("auc: fewer than two baseline windows have an AUC")
     limits: dict[str, float] = {"cusum_h": settings.cusum_h}
     for name, (cusum, ewma) in charts.items():
         limits["ewma_limit"] = ewma.control_limit

@@ -76,6 +76,8 @@ from coordinator.monitoring.findings import (
 )
 from coordinator.monitoring.label_free import (
     attribute_counts,
+    baseline_capacity,
+    dispersion,
     label_free_row,
     merged_histogram,
     mix_counts,
@@ -172,6 +174,9 @@ def _analyse_site(
     notes: list[str] = []
     base_hist = merged_histogram([r.statistics.histogram for r in baseline])
     base_mix = mix_counts(baseline, settings.mix_attribute)
+    spread = dispersion(baseline, base_hist)
+    base_total = sum(r.statistics.n_observations for r in baseline)
+    base_capacity = baseline_capacity(baseline, base_hist)
     if not baseline:
         notes.append("no baseline window was released: drift is undetermined at this site")
     rows: list[dict[str, object]] = []
@@ -191,7 +196,11 @@ def _analyse_site(
         row.update(_counts_row(release, threshold, settings.mix_attribute))
         row["revisions"] = revisions.get((start, end), 0)
         if index >= n_base and base_hist is not None:
-            row.update(label_free_row(release, base_hist, base_mix, settings))
+            row.update(
+                label_free_row(
+                    release, base_hist, base_mix, settings, spread, base_total, base_capacity
+                )
+            )
             for metric, method, key, level in (
                 (SCORE_DISTRIBUTION, "psi", "psi", "psi_level"),
                 (SCORE_DISTRIBUTION, "ks", "ks_distance", "ks_level"),

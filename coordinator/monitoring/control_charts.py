@@ -1,5 +1,7 @@
 """CUSUM and EWMA control charts over a site's per-window metrics.
 
+(Over 500 lines for a reason: the self-starting charts share this module's chart engine.)
+
 A site releases, per time window, either an estimate with its standard error (AUC, a
 calibration slope) or a count pair (true positives out of diseased cases for
 sensitivity). Each window is first *standardized* against the in-control target::
@@ -34,6 +36,9 @@ Montgomery DC (2009). Introduction to Statistical Quality Control, 6th ed. Wiley
 chapter 9.
 Hawkins DM, Olwell DH (1998). Cumulative Sum Charts and Charting for Quality
 Improvement. Springer, New York. doi:10.1007/978-1-4612-1686-5
+Hawkins DM (1987). Self-starting CUSUM charts for location and scale. The Statistician
+36:299–316. doi:10.2307/2348827 (:func:`self_starting_z`: in-control values estimated
+from a short baseline, their uncertainty carried by the t distribution).
 Reynolds MR, Stoumbos ZG (1999). A CUSUM chart for monitoring a proportion when
 inspecting continuously. Journal of Quality Technology 31:87–108.
 doi:10.1080/00224065.1999.11979900
@@ -47,6 +52,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy import stats
 from scipy.optimize import brentq
 
 from site_agent.exceptions import InputError
@@ -366,6 +372,90 @@ def ewma_chart_proportion(
     """
     z = _standardize_proportions(successes, trials, target_rate)
     return _ewma(z, lam, width, side, "standardized binomial EWMA")
+
+
+def self_starting_z(values: ArrayLike, baseline_windows: int) -> NDArray[np.float64]:
+    """Return Hawkins' self-starting standardized values of the windows after the baseline.
+
+    The in-control mean and SD are not taken as known: window ``n`` (counting the finite
+    values from the first) is compared with the mean ``x̄`` and SD ``s`` of the ``n − 1``
+    finite values before it, baseline included::
+
+        T_n = (x_n − x̄_{n−1}) / (s_{n−1} · sqrt(1 + 1/(n − 1)))   ~ t with n − 2 df
+        U_n = Φ⁻¹(F_{t, n−2}(T_n))                                 ~ N(0, 1), independent
+
+    while the process is in control and normal (Hawkins 1987). The uncertainty of the
+    estimated mean and SD is in the t distribution, so charts on ``U`` keep the published
+    run lengths even when the baseline is a handful of windows, and the SD is that of the
+    windows themselves (extra noise between windows included), not a within-window
+    standard error. Windows before ``baseline_windows`` only feed the running estimates;
+    NaN values are skipped (NaN ``U``); a window with fewer than two finite values before
+    it, or with ``s = 0``, has NaN ``U``.
+
+    References
+    ----------
+    Hawkins DM (1987). Self-starting CUSUM charts for location and scale. Journal of the
+    Royal Statistical Society, Series D (The Statistician) 36:299–316.
+    doi:10.2307/2348827
+    Hawkins DM, Olwell DH (1998). Cumulative Sum Charts and Charting for Quality
+    Improvement. Springer, section 7.2. doi:10.1007/978-1-4612-1686-5
+    """
+    x = np.asarray(values, dtype=float)
+    if x.ndim != 1:
+        raise InputError("values must be a one-dimensional sequence")
+    if not 0 <= baseline_windows <= x.size:
+        raise InputError("baseline_windows must lie between 0 and the number of windows")
+    u = np.full(x.size - baseline_windows, np.nan)
+    seen: list[float] = []
+    for t, xt in enumerate(x.tolist()):
+        if not math.isfinite(xt):
+            continue
+        n = len(seen) + 1
+        if t >= baseline_windows and n >= 3:
+            mean = float(np.mean(seen))
+            sd = float(np.std(seen, ddof=1))
+            if sd > 0:
+                # Hawkins (1987): T_n = (x_n − x̄_{n−1}) / (s_{n−1} √(1 + 1/(n−1))) ~ t_{n−2}
+                tn = (xt - mean) / (sd * math.sqrt(1.0 + 1.0 / (n - 1)))
+                u[t - baseline_windows] = float(stats.norm.isf(stats.t.sf(tn, n - 2)))
+        seen.append(xt)
+    return u
+
+
+def self_starting_cusum(
+    values: ArrayLike,
+    baseline_windows: int,
+    *,
+    k: float = DEFAULT_CUSUM_K,
+    h: float = DEFAULT_CUSUM_H,
+    side: Side = "both",
+) -> CusumResult:
+    """Run a tabular CUSUM on :func:`self_starting_z` of the windows after the baseline.
+
+    References
+    ----------
+    Hawkins DM (1987). The Statistician 36:299–316. doi:10.2307/2348827
+    Page ES (1954). Biometrika 41:100–115. doi:10.1093/biomet/41.1-2.100
+    """
+    return _cusum(self_starting_z(values, baseline_windows), k, h, side, "self-starting CUSUM")
+
+
+def self_starting_ewma(
+    values: ArrayLike,
+    baseline_windows: int,
+    *,
+    lam: float = DEFAULT_EWMA_LAMBDA,
+    width: float = DEFAULT_EWMA_WIDTH,
+    side: Side = "both",
+) -> EwmaResult:
+    """Run an EWMA chart on :func:`self_starting_z` of the windows after the baseline.
+
+    References
+    ----------
+    Hawkins DM (1987). The Statistician 36:299–316. doi:10.2307/2348827
+    Roberts SW (1959). Technometrics 1:239–250. doi:10.1080/00401706.1959.10489860
+    """
+    return _ewma(self_starting_z(values, baseline_windows), lam, width, side, "self-starting EWMA")
 
 
 def _siegmund_one_sided(delta: float, b: float) -> float:

@@ -276,6 +276,7 @@ def binned_ks(
     current: ArrayLike,
     *,
     thresholds: tuple[float, float] = DEFAULT_P_THRESHOLDS,
+    design_effect: float = 1.0,
 ) -> KsResult:
     """Return the two-sample Kolmogorov–Smirnov distance between two binned distributions.
 
@@ -297,9 +298,15 @@ def binned_ks(
     thresholds
         ``(watch, shifted)`` p-value cut-offs: p below ``watch`` reads ``watch``, below
         ``shifted`` reads ``shifted``. Defaults 0.05 and 0.01 are common practice.
+    design_effect
+        Variance inflation of the histograms over multinomial sampling (at least 1; see
+        :func:`coordinator.monitoring.window_null.baseline_dispersion`): the effective size
+        is divided by it (Kish 1965, section 8.2), so clustered cases do not pass for
+        independent ones.
 
     References
     ----------
+    Kish L (1965). Survey Sampling. Wiley, New York, section 8.2 (design effect).
     Smirnov NV (1948). Table for estimating the goodness of fit of empirical distributions.
     Annals of Mathematical Statistics 19:279–281. doi:10.1214/aoms/1177730256
     Massey FJ (1951). Journal of the American Statistical Association 46:68–78.
@@ -309,6 +316,8 @@ def binned_ks(
     """
     ref, cur = _paired_histograms(reference, current)
     _check_thresholds(thresholds, increasing=False)
+    if not (math.isfinite(design_effect) and design_effect >= 1.0):
+        raise InputError(f"design_effect must be finite and at least 1, got {design_effect}")
     n_ref, n_cur = int(ref.sum()), int(cur.sum())
     if n_ref == 0 or n_cur == 0:
         return KsResult(
@@ -324,7 +333,8 @@ def binned_ks(
     # Massey (1951): D = sup_x |F_1(x) − F_2(x)|, here taken over the upper bin edges.
     distance = float(np.max(np.abs(np.cumsum(ref) / n_ref - np.cumsum(cur) / n_cur)))
     # Smirnov (1948) asymptotics on the effective size, as in scipy.stats.ks_2samp.
-    effective_n = n_ref * n_cur / (n_ref + n_cur)
+    # Kish (1965): an effective size divided by the design effect.
+    effective_n = n_ref * n_cur / (n_ref + n_cur) / design_effect
     rounded_n = max(1.0, float(np.round(effective_n)))
     p_value = float(np.clip(kstwo.sf(distance, rounded_n), 0.0, 1.0))
     return KsResult(

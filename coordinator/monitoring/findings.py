@@ -21,11 +21,10 @@ from coordinator.monitoring.control_charts import (
     DEFAULT_EWMA_WIDTH,
 )
 from coordinator.monitoring.drift import (
-    DEFAULT_P_THRESHOLDS,
-    DEFAULT_PSI_THRESHOLDS,
     DEFAULT_TVD_THRESHOLDS,
     DriftLevel,
 )
+from coordinator.monitoring.window_null import DEFAULT_SHIFT_ALPHA, DEFAULT_WATCH_ALPHA
 from site_agent.contract.protocol import DEFAULT_BASELINE_WINDOWS
 from site_agent.notices import RESEARCH_NOTICE
 
@@ -58,8 +57,14 @@ class DriftSettings(_Model):
     cusum_h: float = DEFAULT_CUSUM_H
     ewma_lambda: float = DEFAULT_EWMA_LAMBDA
     ewma_width: float = DEFAULT_EWMA_WIDTH
-    psi_thresholds: tuple[float, float] = DEFAULT_PSI_THRESHOLDS
-    p_thresholds: tuple[float, float] = DEFAULT_P_THRESHOLDS
+    psi_thresholds: tuple[float, float] | None = Field(
+        default=None,
+        description=(
+            "Fixed PSI limits (watch, shifted); None: limits from the window sizes and the "
+            "baseline's dispersion (coordinator.monitoring.window_null)."
+        ),
+    )
+    p_thresholds: tuple[float, float] = (DEFAULT_WATCH_ALPHA, DEFAULT_SHIFT_ALPHA)
     tvd_thresholds: tuple[float, float] = DEFAULT_TVD_THRESHOLDS
 
 
@@ -77,6 +82,7 @@ class WindowDrift(_Model):
     label_completeness: float | None = None
     revisions: int = Field(default=0, description="Times the stored release was replaced.")
     psi: float | None = None
+    psi_limit: float | None = Field(default=None, description="PSI at which it reads shifted.")
     psi_level: DriftLevel = DriftLevel.UNDETERMINED
     ks_distance: float | None = None
     ks_p_value: float | None = None

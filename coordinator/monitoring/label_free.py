@@ -14,13 +14,11 @@ Siddiqi N (2006). Credit Risk Scorecards. Wiley, chapter 8.
 
 from __future__ import annotations
 
-from coordinator.monitoring.drift import (
-    binned_ks,
-    category_chi_square,
-    population_stability_index,
-    total_variation_distance,
-)
+import math
+
+from coordinator.monitoring.drift import category_chi_square, total_variation_distance
 from coordinator.monitoring.findings import DriftSettings, finite_or_none
+from coordinator.monitoring.window_null import Dispersion, baseline_dispersion, label_free_drift
 from site_agent.contract.release import SiteRelease
 from site_agent.statistics.summaries import ScoreHistogram, common_edges
 
@@ -61,13 +59,72 @@ def attribute_counts(release: SiteRelease, attribute: str | None) -> dict[str, i
     return None
 
 
+def capacity(release: SiteRelease) -> list[float]:
+    """Most suppressed cases each bin of a window's histogram can hold.
+
+    A suppressed cell reads 0 in its row (positive, negative or pending), and each row's
+    total is released, so a bin can hold at most, summed over its rows that read 0, what
+    that row is missing; a bin with no zero cell lost nothing to suppression.
+    """
+    stats = release.statistics
+    h = stats.histogram
+    pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
+    rows = (
+        (h.positive, stats.n_positive - sum(h.positive)),
+        (h.negative, stats.n_negative - sum(h.negative)),
+        (pending, stats.n_pending - sum(pending)),
+    )
+    return [
+        float(sum(max(0, lost) for row, lost in rows if row[i] == 0)) for i in range(len(pending))
+    ]
+
+
+def baseline_capacity(
+    baseline: list[SiteRelease], base_hist: ScoreHistogram | None
+) -> list[float] | None:
+    """Per bin, the suppressed baseline cases it can hold, summed over the baseline windows."""
+    if base_hist is None:
+        return None
+    total = [0.0] * (len(base_hist.edges) - 1)
+    for release in baseline:
+        histogram = release.statistics.histogram
+        if tuple(histogram.edges) != tuple(base_hist.edges):
+            return None
+        cap = capacity(release)
+        total = [t + c for t, c in zip(total, cap, strict=True)]
+    return total
+
+
+def dispersion(baseline: list[SiteRelease], base_hist: ScoreHistogram | None) -> Dispersion:
+    """Dispersion of the baseline windows' score histograms on the PSI bands (window_null)."""
+    if base_hist is None:
+        return Dispersion(1.0, math.inf, 0, "no baseline histogram")
+    bands = _bands(base_hist.all, PSI_BAND_SHARE)
+    windows, totals = [], []
+    for release in baseline:
+        if tuple(release.statistics.histogram.edges) != tuple(base_hist.edges):
+            continue  # a window on other edges cannot be put on the baseline's bands
+        counts = release.statistics.histogram.all
+        windows.append([sum(counts[a:b]) for a, b in bands])
+        totals.append(max(release.statistics.n_observations, sum(counts)))
+    return baseline_dispersion(windows, totals)
+
+
 def label_free_row(
     release: SiteRelease,
     base_hist: ScoreHistogram,
     base_mix: dict[str, int] | None,
     settings: DriftSettings,
+    spread: Dispersion,
+    base_total: int,
+    base_capacity: list[float] | None,
 ) -> dict[str, object]:
-    """Return a monitored window's PSI, KS, chi-square and TVD fields and their notes."""
+    """Return a monitored window's PSI, KS, chi-square and TVD fields and their notes.
+
+    PSI and KS are judged against limits that follow the window sizes and the baseline
+    windows' own dispersion (:mod:`coordinator.monitoring.window_null`); cases in
+    suppressed cells are unknown, so each statistic is the bound closest to the baseline.
+    """
     row: dict[str, object] = {}
     notes: list[str] = []
     current = release.statistics.histogram
@@ -76,21 +133,30 @@ def label_free_row(
         notes.append("the window and the baseline share fewer than two score bins")
     else:
         ref, cur = base_hist.coarsened(edges).all, current.coarsened(edges).all
-        bands = _bands(ref, PSI_BAND_SHARE)
-        psi = population_stability_index(
-            [sum(ref[a:b]) for a, b in bands],
-            [sum(cur[a:b]) for a, b in bands],
-            thresholds=settings.psi_thresholds,
-        )
-        ks = binned_ks(ref, cur, thresholds=settings.p_thresholds)
-        row.update(
-            psi=finite_or_none(psi.psi),
-            psi_level=psi.level,
-            ks_distance=finite_or_none(ks.distance),
-            ks_p_value=finite_or_none(ks.p_value),
-            ks_level=ks.level,
-        )
-        notes.extend(r for r in (psi.reason, ks.reason) if r)
+        ref_total = max(base_total, sum(ref))
+        cur_total = max(release.statistics.n_observations, sum(cur))
+        same = tuple(edges) == tuple(current.edges) == tuple(base_hist.edges)
+        if sum(ref) and sum(cur):
+            drift = label_free_drift(
+                ref, ref_total, cur, cur_total, spread,
+                p_thresholds=settings.p_thresholds,
+                fixed_psi_limits=settings.psi_thresholds,
+                bands=_bands(ref, PSI_BAND_SHARE),
+                reference_capacity=base_capacity if same else None,
+                current_capacity=capacity(release) if same else None,
+            )  # fmt: skip
+            row.update(
+                psi=finite_or_none(drift.psi),
+                psi_limit=finite_or_none(drift.psi_limits[1]),
+                psi_level=drift.psi_level,
+                ks_distance=finite_or_none(drift.ks_distance),
+                ks_p_value=finite_or_none(drift.ks_p_value),
+                ks_level=drift.ks_level,
+            )
+            if drift.bounded:
+                notes.append("suppressed cells: PSI and KS are lower bounds")
+        else:
+            notes.append("a window holds no cases")
     mix = attribute_counts(release, settings.mix_attribute)
     if base_mix and mix:
         chi = category_chi_square(base_mix, mix, thresholds=settings.p_thresholds)

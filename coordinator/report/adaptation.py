@@ -121,12 +121,14 @@ def adaptation_section(results: StudyResults) -> str:
         "<p>Sites fine-tuned the model on increasing numbers of their own cases, drawn by "
         "whole patients from a local training pool, and measured it on a held-out local test "
         "set that training never saw. Each point is the mean over seeds on the logit scale "
-        "with a Rubin interval (within-seed and between-seed variance); the pooled panel is "
+        "with a Rubin interval (within-seed and between-seed variance; where a seed reached "
+        "an AUC of exactly 1, on the AUC scale with the interval cut at 1); the pooled panel is "
         "the mean of the sites' logits. The dashed line is the development site's AUC minus "
         "the margin.</p>"
     ]
     if results.adaptation:
         parts.append(f"<figure>{adaptation_curves_svg(results)}</figure>")
+        parts.append(_shift_descriptions(results))
     changes = [r for r in results.adaptation if r.metric == AUC_CHANGE]
     if changes:
         rows = "".join(
@@ -166,6 +168,25 @@ def adaptation_section(results: StudyResults) -> str:
             f"<th>95% CI</th><th>method</th></tr></thead><tbody>{rows}</tbody></table>"
         )
     return "".join(parts)
+
+
+def _shift_descriptions(results: StudyResults) -> str:
+    """List how each adapted site differs from the development site, as it was described.
+
+    A curve that rises over many cases means the site's shift destroyed information the
+    model relied on; one that is flat after a few cases means a refit undid the shift.
+    """
+    adapted = {r.site for r in results.adaptation}
+    described = [s for s in results.sites if s.site in adapted and s.description]
+    if not described:
+        return ""
+    items = "".join(f"<li>{_e(s.site)}: {_e(s.description)}</li>" for s in described)
+    return (
+        "<p>What each site's curve responds to, as the site is described: shifts of gain "
+        "and offset are undone by a refit on a few cases; unreliable features and "
+        "measurement noise destroy information, so the curve keeps rising over tens to "
+        f"hundreds of cases.</p><ul>{items}</ul>"
+    )
 
 
 def _signed(value: float) -> str:

@@ -28,6 +28,7 @@ from coordinator.monitoring.analysis import (
     LABEL_METRICS,
     SCORE_DISTRIBUTION,
     DriftFindings,
+    DriftSettings,
     SiteDrift,
     mix_metric,
 )
@@ -56,6 +57,17 @@ class DriftReportFiles:
     json: Path
     windows_csv: Path
     alarms_csv: Path
+
+
+def _psi_rule(settings: DriftSettings) -> str:
+    """Say in words which PSI limit applies."""
+    if settings.psi_thresholds is not None:
+        return f"{settings.psi_thresholds[1]:g} (a fixed limit set by the study)"
+    return (
+        f"the level a window of its size exceeds by chance with probability "
+        f"{settings.p_thresholds[1]:g}, given the baseline's own window-to-window noise "
+        "(chi-square approximation, Yurdakul 2018)"
+    )
 
 
 def write_drift_report(
@@ -179,13 +191,17 @@ about patients.</p>
 {"".join(f"<p><em>{e(line)}</em></p>" for line in context)}
 <h2>Alarm summary: first alarming window per site and metric</h2>
 <table id="alarm-summary">{"".join(summary)}</table>
-<p><small>Score distribution: PSI of at least {s.psi_thresholds[1]:g} over baseline score
-bands, or binned KS p below {s.p_thresholds[1]:g}, both common practice. Attribute mix:
+<p><small>Score distribution: PSI over baseline score bands above {_psi_rule(s)}, or binned
+KS p below {s.p_thresholds[1]:g} with the effective size divided by the baseline's
+dispersion (Kish 1965); cells a site suppressed count as unknown, and both statistics are
+the smallest value any placement of those cases allows. Attribute mix:
 chi-square p below {s.p_thresholds[1]:g} or total variation distance of at least
 {s.tvd_thresholds[1]:g} (our default). Sensitivity and specificity (threshold
 {findings.threshold}) and AUC: one-sided CUSUM (k {s.cusum_k:g}, h {s.cusum_h:g}) and
 EWMA (λ {s.ewma_lambda:g}, L {s.ewma_width:g}) charts for a fall below the baseline,
-designs from published ARL tables (Montgomery 2009; Lucas &amp; Saccucci 1990).</small></p>
+designs from published ARL tables (Montgomery 2009; Lucas &amp; Saccucci 1990); the AUC
+charts are self-starting (Hawkins 1987): each window is judged against the mean and SD of
+all earlier windows, their uncertainty carried by a t distribution.</small></p>
 <h2>Label completeness (share of released cases with a known label)</h2>
 <table id="label-completeness">{"".join(completeness)}</table>
 <p id="label-updates">{updated} site window(s) were fetched again and updated after their
@@ -247,7 +263,8 @@ def _label_free_svg(findings: DriftFindings, site: SiteDrift) -> str:
                 color=colour(0))  # fmt: skip
         ax.plot(numbers, [_nan(w.ks_distance) for w in site.windows], "s-", label="KS distance",
                 color=colour(1))  # fmt: skip
-        ax.axhline(findings.settings.psi_thresholds[1], color=colour(0), linestyle=":")
+        ax.step(numbers, [_nan(w.psi_limit) for w in site.windows], where="mid",
+                color=colour(0), linestyle=":", label="PSI limit")  # fmt: skip
         ax.axvspan(0.5, findings.settings.baseline_windows + 0.5, color="#ddd", alpha=0.5)
         ax.set_title("score distribution vs baseline")
         ax.set_xlabel("window")

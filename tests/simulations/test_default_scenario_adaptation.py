@@ -16,9 +16,9 @@ from sklearn.metrics import roc_auc_score
 
 from simulations.dataset import load_public_dataset
 from simulations.development import develop_model
+from simulations.rehearsal import REHEARSAL_ADAPTATION
 from simulations.scenario import default_scenario
 from simulations.sites import build_sites, development_split
-from site_agent.contract.protocol import AdaptationPlan
 from site_agent.statistics.roc import paired_delong
 from site_agent.training.local_training import LocalData, fine_tune, local_data
 from site_agent.training.model_bundle import bundle_bytes, load_bundle
@@ -36,7 +36,7 @@ def test_local_adaptation_raises_auc_at_the_most_degraded_default_site() -> None
     train, _ = development_split(sites[scenario.development_index], seed=scenario.seed)
     developed = develop_model(train, "logistic", seed=scenario.seed)
     bundle = load_bundle(bundle_bytes(developed.model, developed.manifest))
-    plan = AdaptationPlan()  # the protocol defaults the rehearsal registers
+    plan = REHEARSAL_ADAPTATION  # the plan the rehearsal registers
     datas = {s.name: local_data(s.table, bundle, plan) for s in sites if not s.is_development}
     labels = {name: d.y[d.test].numpy().astype(np.int64) for name, d in datas.items()}
     before = {name: _test_scores(bundle.model, d) for name, d in datas.items()}

@@ -144,3 +144,35 @@ def test_jitter_perturbs_only_resampled_rows_by_the_stated_fraction() -> None:
     diff = (out["feature_mean_area"] - big["feature_mean_area"]).to_numpy()[mask]
     ratio = diff.std() / (0.05 * REFERENCE.sds["feature_mean_area"])
     assert 0.95 < ratio < 1.05
+
+
+def test_feature_corruption_is_a_mean_preserving_log_normal_error_on_named_columns() -> None:
+    """Values times exp(s e - s^2/2): log-ratio SD s, mean kept, other columns untouched.
+
+    Reference: the log-normal mean exp(mu + s^2/2) (common practice); the SD of the log
+    ratio is checked with scipy.stats.chi2 bounds on a sample variance.
+    """
+    sigma = 0.5
+    shifted = apply_acquisition_shift(
+        TABLE.features,
+        AcquisitionShift(corrupted_features=("worst",), corruption_sd=sigma),
+        TABLE.groups,
+        REFERENCE,
+        np.random.default_rng(3),
+    )
+    worst = [c for c in TABLE.features.columns if "worst" in c]
+    others = [c for c in TABLE.features.columns if c not in worst]
+    pd.testing.assert_frame_equal(shifted[others], TABLE.features[others])
+    column = "feature_worst_radius"  # strictly positive in WDBC
+    log_ratio = np.log(shifted[column] / TABLE.features[column])
+    n = len(log_ratio)
+    low = sigma**2 * stats.chi2.ppf(0.0005, n - 1) / (n - 1)
+    high = sigma**2 * stats.chi2.ppf(0.9995, n - 1) / (n - 1)
+    assert low <= log_ratio.var(ddof=1) <= high
+    assert log_ratio.mean() == pytest.approx(-(sigma**2) / 2, abs=4 * sigma / np.sqrt(n))
+
+
+def test_corruption_sd_without_named_features_is_refused() -> None:
+    """A corruption strength with no columns named is a scenario error, not a silent no-op."""
+    with pytest.raises(ValueError, match="corrupted_features"):
+        AcquisitionShift(corruption_sd=0.5)
