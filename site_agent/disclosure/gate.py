@@ -56,6 +56,7 @@ from site_agent.disclosure.refusals import (
     refusal_code,
     refusal_reason,
 )
+from site_agent.disclosure.release_history import ReleaseHistory, release_footprints
 from site_agent.disclosure.request_check import COORDINATOR_NAME_KEY, check_request
 from site_agent.disclosure.small_cells import DisclosureNote, apply_policy
 from site_agent.disclosure.update_release import (
@@ -174,6 +175,16 @@ def _released(
             return _declined(
                 msg, answered.site, answered.request_id, code, session, request, study_id, epsilon
             )
+        history, footprints = ReleaseHistory(ledger.path), None
+        if epsilon is None:  # under differential privacy the budget bounds what releases add
+            footprints = release_footprints(answered.release, release, note.cuts_withheld())
+            history.check(
+                session,
+                study_id=study_id,
+                window=request.window,
+                footprints=footprints,
+                policy=policy,
+            )
         out = answered.model_copy(update={"release": release})
         out = SiteReply.model_validate(out.model_dump())
         content = encode_reply(out)
@@ -190,6 +201,10 @@ def _released(
             released=released,
             epsilon_spent=epsilon or 0.0,
         )
+        if footprints is not None:
+            history.record(
+                session, entry, study_id=study_id, window=request.window, footprints=footprints
+            )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )
