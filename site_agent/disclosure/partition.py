@@ -188,9 +188,9 @@ def _kept_starts(
 ) -> list[int]:
     """Return the first cell of each group of a partition into contiguous groups.
 
-    Every row's sum over every group is 0 or at least ``m``; among such partitions the
-    one with the largest total weight of kept cuts (``weights[i]`` is the cut before
-    cell ``i``). Exact dynamic programming, O(cells² · rows).
+    Every row's sum over every group is 0 or at least ``m`` in absolute value; among
+    such partitions, the one with the largest total weight of kept cuts (``weights[i]``
+    is the cut before cell ``i``). Exact dynamic programming, O(cells² · rows).
     """
     cells = rows.shape[1]
     prefix = np.zeros((rows.shape[0], cells + 1), dtype=np.int64)
@@ -200,7 +200,7 @@ def _kept_starts(
     back = np.zeros(cells + 1, dtype=np.int64)
     for end in range(1, cells + 1):
         sums = prefix[:, end : end + 1] - prefix[:, :end]
-        ok = np.all((sums == 0) | (sums >= m), axis=0)
+        ok = np.all((sums == 0) | (np.abs(sums) >= m), axis=0)
         candidate = np.where(ok, best[:end] + weights[:end], -np.inf)
         start = int(np.argmax(candidate))
         best[end], back[end] = candidate[start], start
@@ -251,7 +251,7 @@ def _apply(
     out: PartitionControl,
 ) -> SufficientStatistics:
     both = kept["positive"] & kept["negative"]
-    stats = control_agreement(stats, m, path, out)
+    stats = control_agreement(stats, m, path, out, allowed=both)
     return stats.model_copy(
         update={
             "confusion": tuple(
@@ -317,7 +317,7 @@ def _histogram(
     rows = []
     for name, row in (("positive", h.positive), ("negative", h.negative)):
         gone = _next_to_removed(h.edges, kept[name])
-        out.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(gone) if row[i])
+        out.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(gone))
         rows.append(tuple(0 if i in gone else v for i, v in enumerate(row)))
     return ScoreHistogram(
         edges=h.edges,
@@ -340,7 +340,7 @@ def _calibration(
         out.merged.append(path)
         return c.coarsened((0.0, *(e for e in c.edges[1:-1] if e in both), 1.0))
     gone = _next_to_removed(c.edges, both)
-    out.suppressed.extend(f"{path}[{i}]" for i in sorted(gone) if c.count[i])
+    out.suppressed.extend(f"{path}[{i}]" for i in sorted(gone))
 
     def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
         return tuple(type(v)(0) if i in gone else v for i, v in enumerate(values))
@@ -355,13 +355,23 @@ def _calibration(
 
 
 def control_agreement(
-    stats: SufficientStatistics, m: int, path: str, out: PartitionControl
+    stats: SufficientStatistics,
+    m: int,
+    path: str,
+    out: PartitionControl,
+    *,
+    allowed: frozenset[float],
 ) -> SufficientStatistics:
     """Withhold model-versus-reader tables whose threshold splits off a small count.
 
-    For each binary reader, the tables of the model at successive thresholds give, for
-    the cases the reader called 0 and those called 1, how many score at or above each
-    threshold; the rule of the module docstring is applied to those two series.
+    A table is kept only at a threshold that both classes kept (``allowed``), and only
+    when the release carries no pending case: the reader's calls cross the classes and
+    count pending cases, which the release cuts only at histogram edges, so a table at a
+    threshold could be set against the class counts to isolate pending or uncalled cases.
+    Among those thresholds, for each binary reader, three series must hold 0 or at least
+    ``m`` cases (in absolute value) between kept thresholds: the cases the reader called 0,
+    those called 1, and the labelled cases minus both (the labelled cases the reader did
+    not call, when no pending case is in the release).
     """
     by_name = {model_rater(t): t for t in stats.thresholds}
     series: dict[str, list[tuple[float, int]]] = {}
@@ -369,8 +379,14 @@ def control_agreement(
         first = table.raters[0]
         if table.scale == "binary" and first in by_name and by_name[first] > 0:
             series.setdefault(table.raters[1], []).append((by_name[first], i))
-    dropped: set[int] = set()
+    confusion = {c.threshold: c for c in stats.confusion}
+    dropped: set[int] = {
+        i for ts in series.values() for t, i in ts if t not in allowed or stats.n_pending > 0
+    }
     for reader_tables in series.values():
+        reader_tables[:] = [(t, i) for t, i in reader_tables if i not in dropped]
+        if not reader_tables:
+            continue
         reader_tables.sort()
         rows = []
         lowest = stats.agreement[reader_tables[0][1]]
@@ -378,6 +394,12 @@ def control_agreement(
             total = lowest.counts[0][v] + lowest.counts[1][v]
             cumulative = [total, *(stats.agreement[i].counts[1][v] for _, i in reader_tables), 0]
             rows.append(np.diff(-np.asarray(cumulative, dtype=np.int64)))
+        labelled = [
+            stats.n_positive + stats.n_negative,
+            *(confusion[t].tp + confusion[t].fp for t, _ in reader_tables),
+            0,
+        ]
+        rows.append(np.diff(-np.asarray(labelled, dtype=np.int64)) - rows[0] - rows[1])
         weights = np.ones(len(reader_tables) + 1, dtype=np.float64)
         weights[0] = 0.0
         starts = set(_kept_starts(np.array(rows), weights, m))

@@ -66,7 +66,10 @@ from site_agent.disclosure.partition import PartitionControl, control_partition
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction, suppressed_confusion_cells
 from site_agent.disclosure.privacy_budget import noised_release
 from site_agent.disclosure.refusals import RefusalCode, refusal
-from site_agent.disclosure.subgroup_combinations import check_subgroup_combinations
+from site_agent.disclosure.subgroup_combinations import (
+    check_subgroup_combinations,
+    link_agreement_suppression,
+)
 from site_agent.statistics.summaries import (
     AgreementTable,
     CalibrationBins,
@@ -151,6 +154,7 @@ def apply_policy(
     check_subgroup_combinations(release, m)
     release, partition = control_partition(release, m, policy.small_cells)
     note.absorb(partition)
+    stats = release.statistics
     controlled = release.model_copy(
         update={
             "statistics": _controlled(stats, m, policy.small_cells, "statistics", note),
@@ -170,6 +174,7 @@ def apply_policy(
             ),
         }
     )
+    controlled = link_agreement_suppression(controlled, note.suppressed)
     controlled = controlled.model_copy(
         update={"attribute_counts": _attribute_counts(release.attribute_counts, m, note)}
     )

@@ -37,6 +37,7 @@ The same check runs on each cell of the score partition of a release
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 
 from site_agent.contract.release import SiteRelease
@@ -125,3 +126,48 @@ def check_subgroup_combinations(release: SiteRelease, m: int) -> None:
 
 def _class_totals(stats: SufficientStatistics) -> tuple[int, int, int]:
     return (stats.n_observations, stats.n_positive, stats.n_negative)
+
+
+def link_agreement_suppression(release: SiteRelease, suppressed: list[str]) -> SiteRelease:
+    """Suppress an agreement cell in every population once it is suppressed in one.
+
+    The site's table is the sum of its levels' tables (and the rest), so a cell suppressed
+    in one level but released for the site and the other levels is their difference
+    (linked tables; complementary suppression across tables is common practice in
+    statistical disclosure control). Cells are matched by the raters and the two call
+    values; ``suppressed`` (paths, as in the disclosure note) is extended in place.
+    """
+    populations = [("statistics", release.statistics)]
+    populations += [
+        (f"subgroups[{i}].statistics", s.statistics) for i, s in enumerate(release.subgroups)
+    ]
+    marked = set(suppressed)
+    hidden: dict[tuple[str, str], set[tuple[int, int]]] = {}
+    for path, stats in populations:
+        for i, t in enumerate(stats.agreement):
+            cells = hidden.setdefault(t.raters, set())
+            for x, y in itertools.product(range(len(t.categories)), repeat=2):
+                if f"{path}.agreement[{i}].counts[{x}][{y}]" in marked:
+                    cells.add((t.categories[x], t.categories[y]))
+    out = []
+    for path, stats in populations:
+        tables = []
+        for i, t in enumerate(stats.agreement):
+            cells = hidden.get(t.raters, set())
+            counts = [list(row) for row in t.counts]
+            for x, y in itertools.product(range(len(t.categories)), repeat=2):
+                name = f"{path}.agreement[{i}].counts[{x}][{y}]"
+                if (t.categories[x], t.categories[y]) in cells and name not in marked:
+                    counts[x][y] = 0
+                    suppressed.append(name)
+            tables.append(t.model_copy(update={"counts": tuple(tuple(r) for r in counts)}))
+        out.append(stats.model_copy(update={"agreement": tuple(tables)}))
+    return release.model_copy(
+        update={
+            "statistics": out[0],
+            "subgroups": tuple(
+                s.model_copy(update={"statistics": st})
+                for s, st in zip(release.subgroups, out[1:], strict=True)
+            ),
+        }
+    )
