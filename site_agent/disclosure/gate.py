@@ -4,10 +4,12 @@
 ClientApp. Before the handler runs it checks the request
 (:func:`site_agent.disclosure.request_check.check_request`); after, it applies the site's
 policy to the release (:func:`site_agent.disclosure.small_cells.apply_policy`, whose module
-states the rules on a release and their limits), records the outcome in the release
-ledger, and sends either the controlled release or a ``declined`` reply whose reason is
-one of our fixed :class:`~site_agent.disclosure.refusals.RefusalCode` texts, never an
-error's own text. Fine-tuning metrics pass the minimum cell size
+states the rules on a release and their limits), compares it with the site's earlier
+releases (:mod:`site_agent.disclosure.release_history`, whose history file beside the
+ledger it extends), records the outcome in the release ledger, and sends either the
+controlled release or a ``declined`` reply whose reason is one of our fixed
+:class:`~site_agent.disclosure.refusals.RefusalCode` texts, never an error's own text.
+Fine-tuning metrics pass the minimum cell size
 (:func:`site_agent.disclosure.adaptation_control.control_adaptation`).
 
 Weight updates (rule 8 of the disclosure rules; rules 1-7 bear on a release and are

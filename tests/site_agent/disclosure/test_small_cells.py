@@ -102,7 +102,9 @@ def test_a_small_pending_count_is_not_recoverable_from_the_agreement_tables() ->
     # case count would give the withheld pending count, so the tables leave with it.
     assert policed.statistics.n_pending == 0
     assert policed.statistics.agreement == ()
-    assert "statistics.agreement" in note.withheld
+    # Withheld by the pending rule, or already by the partition rule (tables at a
+    # threshold are not released beside pending cases).
+    assert any(path.startswith("statistics.agreement") for path in note.withheld)
 
 
 # ----------------------------------------------------------------- attribute counts (rule 7)
