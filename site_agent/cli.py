@@ -80,8 +80,9 @@ def evaluate_command(
             "--policy",
             help=(
                 "The site's disclosure policy: apply it (small cells merged or suppressed, "
-                "subgroup rules) and show what the policy lets leave. Differential privacy "
-                "noise is not drawn here, so nothing is charged to the budget."
+                "subgroup rules, one score partition) and show what the policy lets leave. "
+                "Differential privacy noise is not drawn here, so nothing is charged to the "
+                "budget; the comparison with earlier releases runs in the gate only."
             ),
         ),
     ] = None,

@@ -4,10 +4,12 @@
 ClientApp. Before the handler runs it checks the request
 (:func:`site_agent.disclosure.request_check.check_request`); after, it applies the site's
 policy to the release (:func:`site_agent.disclosure.small_cells.apply_policy`, whose module
-states the rules on a release and their limits), records the outcome in the release
-ledger, and sends either the controlled release or a ``declined`` reply whose reason is
-one of our fixed :class:`~site_agent.disclosure.refusals.RefusalCode` texts, never an
-error's own text. Fine-tuning metrics pass the minimum cell size
+states the rules on a release and their limits), compares it with the site's earlier
+releases (:mod:`site_agent.disclosure.release_history`, whose history file beside the
+ledger it extends), records the outcome in the release ledger, and sends either the
+controlled release or a ``declined`` reply whose reason is one of our fixed
+:class:`~site_agent.disclosure.refusals.RefusalCode` texts, never an error's own text.
+Fine-tuning metrics pass the minimum cell size
 (:func:`site_agent.disclosure.adaptation_control.control_adaptation`).
 
 Weight updates (rule 8 of the disclosure rules; rules 1-7 bear on a release and are
@@ -56,6 +58,7 @@ from site_agent.disclosure.refusals import (
     refusal_code,
     refusal_reason,
 )
+from site_agent.disclosure.release_history import ReleaseHistory, release_footprints
 from site_agent.disclosure.repeat_answer import (
     data_fingerprint,
     find_earlier_answer,
@@ -197,6 +200,16 @@ def _released(
                 epsilon,
                 answer_key=key,
             )
+        history, footprints = ReleaseHistory(ledger.path), None
+        if epsilon is None:  # under differential privacy the budget bounds what releases add
+            footprints = release_footprints(answered.release, release, note.cuts_withheld())
+            history.check(
+                session,
+                study_id=study_id,
+                window=request.window,
+                footprints=footprints,
+                policy=policy,
+            )
         out = answered.model_copy(update={"release": release})
         out = SiteReply.model_validate(out.model_dump())
         content = encode_reply(out)
@@ -214,6 +227,10 @@ def _released(
             epsilon_spent=epsilon or 0.0,
             request_key=key,
         )
+        if footprints is not None:
+            history.record(
+                session, entry, study_id=study_id, window=request.window, footprints=footprints
+            )
     content[DISCLOSURE_RECORD] = ConfigRecord(
         {_NOTE_KEY: note_json, _SEQUENCE_KEY: entry.sequence, _HASH_KEY: entry.entry_hash}
     )

@@ -11,6 +11,7 @@ Example (TOML)::
     allowed_subgroup_attributes = ["sex", "scanner_vendor"]
     allowed_coordinators = ["harbourview-imaging-consortium"]
     approvals_file = "approvals.json"
+    history_scope = "site"   # compare each release with every earlier one, any study
 
     [privacy]
     enabled = true
@@ -57,6 +58,15 @@ class SmallCellAction(StrEnum):
 
     SUPPRESS = "suppress"
     MERGE = "merge"
+
+
+class HistoryScope(StrEnum):
+    """Which earlier releases a new release is compared with (release history rule)."""
+
+    STUDY = "study"
+    """Earlier releases of the same study."""
+    SITE = "site"
+    """Every earlier release of the site, whatever the study."""
 
 
 class NoiseMechanism(StrEnum):
@@ -140,6 +150,13 @@ class SitePolicy(_Frozen):
         description=(
             "Coordinator names allowed to ask; empty allows any coordinator that reaches the "
             "site through its authenticated connection."
+        ),
+    )
+    history_scope: HistoryScope = Field(
+        default=HistoryScope.STUDY,
+        description=(
+            "Compare a new release with the site's earlier releases of the same study, "
+            "or with all of them (across studies)."
         ),
     )
     privacy: PrivacySettings = Field(default_factory=PrivacySettings)
@@ -227,7 +244,7 @@ def censored_cells(
     """
     out: dict[str, Cell] = dict(cells)
     for a, b in (("tp", "fn"), ("fp", "tn")):
-        if a not in small:
+        if a not in small or a not in cells or b not in cells:
             continue
         primary, partner = (a, b) if 0 < cells[a] < min_cell else (b, a)
         out[primary], out[partner] = censor_pair(cells[primary], cells[partner], min_cell)

@@ -39,9 +39,22 @@ class RefusalCode(StrEnum):
     NOT_COVERED_BY_PRIVACY = "not_covered_by_privacy"
     UPDATE_NOT_ALLOWED = "update_release_not_allowed"
     LEDGER_UNVERIFIED = "ledger_unverified"
+    SUBGROUP_DESIGN_TOO_BROAD = "subgroup_design_too_broad"
+    RELEASE_DIFFERENCE_BELOW_MIN_CELL = "release_difference_below_min_cell"
+    WINDOW_OVERLAPS_EARLIER_RELEASE = "window_overlaps_earlier_release"
 
 
 REFUSAL_TEXT: Mapping[RefusalCode, str] = {
+    RefusalCode.SUBGROUP_DESIGN_TOO_BROAD: (
+        "the release has more subgroup attributes than the site's combination check covers"
+    ),
+    RefusalCode.RELEASE_DIFFERENCE_BELOW_MIN_CELL: (
+        "compared with an earlier release, this one would isolate fewer cases than the "
+        "minimum cell size"
+    ),
+    RefusalCode.WINDOW_OVERLAPS_EARLIER_RELEASE: (
+        "the time window overlaps a window the site already released without matching it"
+    ),
     RefusalCode.UPDATE_NOT_ALLOWED: "the site's policy does not let weight updates leave",
     RefusalCode.NOT_COVERED_BY_PRIVACY: (
         "the site's differential privacy does not cover this output, so it is not released"

@@ -15,11 +15,18 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    any subgroup level. A small number of pending labels is withheld instead (pending cases
    leave the release: their counts, the ``all`` histogram row and the agreement tables,
    which count them too, are dropped).
-4. Refused: subgroup differences. Within an attribute, the cases in no released level
-   (site total minus the sum of levels) must not be small. Across two attributes, the
-   totals of any two levels must not differ by a small number: if one level nests in the
-   other, the difference isolates that many cases. Counts cannot tell nesting apart, so
-   the rule is applied to every cross-attribute pair.
+4. Refused: subgroup combinations. The cases of an attribute in no released level must
+   not be small, and no signed sum of one union of levels per attribute and the site
+   total may be small (nested levels, overlaps of three attributes;
+   :mod:`site_agent.disclosure.subgroup_combinations` states the rule). More than
+   ``MAX_COMBINED_ATTRIBUTES`` attributes in one release are refused.
+4a. One partition per release: all thresholds, histogram and calibration edges together
+   cut the score axis into cells; in each class, every cell of the site, of each subgroup
+   level and of each attribute's rest holds 0 or at least ``m`` cases. Cuts that break
+   this are withheld by everything that reports them (threshold cells suppressed, bins
+   merged or suppressed as the policy says) and listed in the note
+   (:mod:`site_agent.disclosure.partition`). Model-versus-reader agreement tables whose
+   threshold splits off a small count of a reader's calls are withheld.
 5. Small cells: a small confusion cell and its partner in the same class (class totals
    are released) are marked censored, with the range each can be and the class total
    (:class:`~site_agent.statistics.censored.CensoredCount`, never a count); the
@@ -42,12 +49,13 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
 
 Limits, said plainly
 --------------------
-Rule 4 checks pairs, not every linear combination of released counts (three or more
-subgroups can still be combined); it can refuse harmless pairs of unrelated attributes.
-Thresholds that fall inside histogram bins refine the bins they split; rule 5 does not
-look at that refinement. Exact estimates (AUC, calibration slope) of groups that pass the
-count rules are released as computed. Only differential privacy bounds what any
-combination of releases can reveal; the count rules are the customary first line.
+Exact estimates (AUC, calibration slope) of groups that pass the count rules are released
+as computed. The partition rule (4a) bounds the score cells of a subgroup-by-threshold
+table by level, rest and the combinations of rule 4, but agreement tables only per
+reader, not by subgroup combination. What one release adds to an *earlier* one is checked
+by the gate (:mod:`site_agent.disclosure.release_history`), not here. Only differential
+privacy bounds what any combination of releases can reveal; the count rules are the
+customary first line.
 """
 
 from __future__ import annotations
@@ -59,16 +67,21 @@ from typing import Any
 from pydantic import BaseModel, ConfigDict
 
 from site_agent.contract.release import POOLED_LEVELS, AttributeCounts, SiteRelease
+from site_agent.disclosure.partition import PartitionControl, control_partition
 from site_agent.disclosure.policy import (
     SitePolicy,
     SmallCellAction,
     censored_cells,
-    exact_cells,
     suppressed_confusion_cells,
 )
 from site_agent.disclosure.privacy_budget import noised_release
 from site_agent.disclosure.refusals import RefusalCode, refusal
+from site_agent.disclosure.subgroup_combinations import (
+    check_subgroup_combinations,
+    link_agreement_suppression,
+)
 from site_agent.disclosure.threshold_tables import differencing_tables
+from site_agent.statistics.censored import Cell, CensoredCount
 from site_agent.statistics.summaries import (
     AgreementTable,
     CalibrationBins,
@@ -97,6 +110,18 @@ class DisclosureNote(BaseModel):
     """Epsilon spent by this release, or None without differential privacy."""
     noise_scale: float | None = None
     """Laplace scale of the noise on every count and sum, or None."""
+    positive_cuts_withheld: tuple[float, ...] = ()
+    """Score cuts (thresholds, bin edges) at which no positive count is released: kept,
+    they would split off fewer than ``min_cell`` positive cases (partition rule)."""
+    negative_cuts_withheld: tuple[float, ...] = ()
+    """The same for negative cases."""
+
+    def cuts_withheld(self) -> dict[str, tuple[float, ...]]:
+        """Return the withheld cuts by class (``positive``, ``negative``)."""
+        return {
+            "positive": self.positive_cuts_withheld,
+            "negative": self.negative_cuts_withheld,
+        }
 
 
 def apply_policy(
@@ -139,7 +164,10 @@ def apply_policy(
     for sub in release.subgroups:
         if not all(_ok(v, m) for v in _totals(sub.statistics)):
             raise refusal(RefusalCode.SUBGROUP_BELOW_MIN_CELL)
-    _check_subgroup_differences(release, m)
+    check_subgroup_combinations(release, m)
+    release, partition = control_partition(release, m, policy.small_cells)
+    note.absorb(partition)
+    stats = release.statistics
     controlled = release.model_copy(
         update={
             "statistics": _controlled(stats, m, policy.small_cells, "statistics", note),
@@ -159,6 +187,7 @@ def apply_policy(
             ),
         }
     )
+    controlled = link_agreement_suppression(controlled, note.suppressed)
     controlled = controlled.model_copy(
         update={"attribute_counts": _attribute_counts(release.attribute_counts, m, note)}
     )
@@ -174,6 +203,13 @@ class _Note:
         self.withheld: list[str] = []
         self.epsilon: float | None = None
         self.noise_scale: float | None = None
+        self.cuts_withheld: dict[str, tuple[float, ...]] = {}
+
+    def absorb(self, partition: PartitionControl) -> None:
+        self.suppressed.extend(partition.suppressed)
+        self.merged.extend(partition.merged)
+        self.withheld.extend(partition.withheld)
+        self.cuts_withheld.update(partition.cuts_withheld)
 
     def freeze(self) -> DisclosureNote:
         return DisclosureNote(
@@ -184,6 +220,8 @@ class _Note:
             withheld=tuple(self.withheld),
             epsilon=self.epsilon,
             noise_scale=self.noise_scale,
+            positive_cuts_withheld=self.cuts_withheld.get("positive", ()),
+            negative_cuts_withheld=self.cuts_withheld.get("negative", ()),
         )
 
 
@@ -205,31 +243,6 @@ def _check_resolution(stats: SufficientStatistics) -> None:
     )
     if any(size > cases for size in sizes):
         raise refusal(RefusalCode.CASE_LEVEL_OUTPUT)
-
-
-def _check_subgroup_differences(release: SiteRelease, m: int) -> None:
-    site = release.statistics
-    by_attribute: dict[str, list[SufficientStatistics]] = {}
-    for sub in release.subgroups:
-        by_attribute.setdefault(sub.attribute, []).append(sub.statistics)
-    for levels in by_attribute.values():
-        for total, parts in zip(
-            _class_totals(site), zip(*(_class_totals(s) for s in levels), strict=True), strict=True
-        ):
-            if not _ok(total - sum(parts), m):
-                raise refusal(RefusalCode.SUBGROUP_DIFFERENCE_BELOW_MIN_CELL)
-    attributes = list(by_attribute)
-    for i, a in enumerate(attributes):
-        for b in attributes[i + 1 :]:
-            for s in by_attribute[a]:
-                for t in by_attribute[b]:
-                    for x, y in zip(_class_totals(s), _class_totals(t), strict=True):
-                        if not _ok(abs(x - y), m):
-                            raise refusal(RefusalCode.SUBGROUP_DIFFERENCE_BELOW_MIN_CELL)
-
-
-def _class_totals(stats: SufficientStatistics) -> tuple[int, int, int]:
-    return (stats.n_observations, stats.n_positive, stats.n_negative)
 
 
 def _controlled(
@@ -277,8 +290,10 @@ def _controlled(
 
 
 def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionCounts:
-    cells = exact_cells(c)
-    small = suppressed_confusion_cells(cells, m)
+    """Censor small cells with their partners; a class the partition rule withheld stays so."""
+    cells: dict[str, Cell] = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
+    exact = {k: v for k, v in cells.items() if not isinstance(v, CensoredCount)}
+    small = suppressed_confusion_cells(exact, m)
     if not small:
         return c
     note.suppressed.extend(f"{path}.{k}" for k in small)
@@ -286,7 +301,7 @@ def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionC
     empty = PatientMoments()
     return ConfusionCounts(
         threshold=c.threshold,
-        **censored_cells(cells, small, m),
+        **{**cells, **censored_cells(exact, small, m)},
         sensitivity=empty,
         specificity=empty,
         ppv=empty,

@@ -224,7 +224,13 @@ def test_suppressed_histogram_cells_are_zero_and_listed(tmp_path: Path) -> None:
     small = [i for i, v in enumerate(original) if 0 < v < 5]
     assert small  # the table has small bins to suppress
     assert all(kept[i] == 0 for i in small)
-    assert all(kept[i] == original[i] for i in range(len(original)) if i not in small)
+    # A bin next to a cut the partition rule withheld is suppressed too, and listed.
+    listed = set(note.suppressed)
+    assert all(
+        kept[i] == original[i] or f"statistics.histogram.positive[{i}]" in listed
+        for i in range(len(original))
+        if i not in small
+    )
     assert {f"statistics.histogram.positive[{i}]" for i in small} <= set(note.suppressed)
 
 
@@ -545,3 +551,23 @@ def test_a_tampered_ledger_makes_the_privacy_budget_check_refuse(tmp_path: Path)
     _declined_with(reply, RefusalCode.LEDGER_UNVERIFIED)
     assert site.entries()[-1]["reason"] == "ledger_unverified"
     assert site.entries()[-1]["epsilon_spent"] == 0.0
+
+
+# ----------------------------------------------------------------- earlier releases
+
+
+def test_attack_rerun_after_adding_one_case_is_declined_by_the_gate(tmp_path: Path) -> None:
+    """The same protocol after one case was added: the second reply is declined."""
+    site = _Site(tmp_path / "fernbrook", _policy())
+    protocol = _protocol(histogram_edges=uniform_edges(10))
+    site.approve(protocol)
+    (first,) = _ask(site, protocol, times=1)
+    assert decode_reply(first.content).status is ReplyStatus.RELEASED
+    with site.data.open("a") as table:
+        table.write("c999,p999,1,0.930000,female,no,no,general\n")
+
+    (second,) = _ask(site, protocol)
+
+    _declined_with(second, RefusalCode.RELEASE_DIFFERENCE_BELOW_MIN_CELL)
+    history = (site.ledger.parent / (site.ledger.name + ".history.jsonl")).read_text()
+    assert len(history.splitlines()) == 1

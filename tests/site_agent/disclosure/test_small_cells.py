@@ -50,13 +50,16 @@ def test_small_confusion_cell_is_censored_with_its_class_partner() -> None:
 
     at_09 = controlled.statistics.confusion[1]
     assert (release.statistics.confusion[1].tp, release.statistics.confusion[1].fn) == (37, 3)
-    # Censored, never 0: what is known is fn in 1..4 (the rule) and tp + fn = 40.
-    assert at_09.fn == CensoredCount(low=1, high=4, class_total=40)
-    assert at_09.tp == CensoredCount(low=36, high=39, class_total=40)
+    # Censored, never 0. The cut at 0.9 splits off 3 positives, so the one-partition rule
+    # withholds it for positives: tp and fn become ranges between the neighbouring kept
+    # thresholds (here the ends of the score axis), each holding the true count.
+    assert isinstance(at_09.fn, CensoredCount) and isinstance(at_09.tp, CensoredCount)
+    assert at_09.fn.class_total == at_09.tp.class_total == 40
+    assert at_09.fn.low <= 3 <= at_09.fn.high and at_09.tp.low <= 37 <= at_09.tp.high
     assert (at_09.fp, at_09.tn) == (0, 40)
     # Complementary suppression (common practice): the released numbers leave every value
     # of 1..m−1 possible for the small cell, so it cannot be recovered by subtraction.
-    assert at_09.fn.low == 1 and at_09.fn.high == policy.min_cell - 1
+    assert at_09.fn.low <= 1 and at_09.fn.high >= policy.min_cell - 1
     assert {"statistics.confusion[1].tp", "statistics.confusion[1].fn"} <= set(note.suppressed)
 
 
@@ -105,7 +108,9 @@ def test_a_small_pending_count_is_not_recoverable_from_the_agreement_tables() ->
     # case count would give the withheld pending count, so the tables leave with it.
     assert policed.statistics.n_pending == 0
     assert policed.statistics.agreement == ()
-    assert "statistics.agreement" in note.withheld
+    # Withheld by the pending rule, or already by the partition rule (tables at a
+    # threshold are not released beside pending cases).
+    assert any(path.startswith("statistics.agreement") for path in note.withheld)
 
 
 # ----------------------------------------------------------------- attribute counts (rule 7)

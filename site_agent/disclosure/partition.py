@@ -1,0 +1,459 @@
+"""One partition per release: every count on the score axis controlled together.
+
+A release reports the score axis in several ways at once: confusion counts at each
+threshold (a case is called positive when ``score >= t``), histogram bins and calibration
+bins (``[e_i, e_{i+1})``), for the site and for every subgroup level. Each of them tells,
+for each class, how many cases score at or above some *cut*; the differences between any
+two cuts, whatever reported them, give the count between them. The finest partition a
+release implies is therefore the one made by *all* its cuts together: thresholds that
+fall between two neighbouring scores, or inside a histogram bin, split off a few cases
+that no single released count shows.
+
+Rule (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
+----------------------------------------------------------------
+For each class (positive, negative) separately, every cell of the finest partition,
+for the site, for each subgroup level and for the rest of each subgroup attribute (cases
+in no released level), must hold 0 or at least ``m`` cases, and no combination of
+subgroup counts in a cell (:mod:`site_agent.disclosure.subgroup_combinations`) may be
+small. Where a cell breaks the rule, cuts are taken away until none does; dynamic
+programming keeps the most cuts, thresholds first. A cut taken away is withheld in the
+same way by everything that reported it:
+
+- a threshold loses the cells of that class (``tp`` and ``fn``, or ``fp`` and ``tn``),
+  which are suppressed (set to 0 and listed in the note, with its patient moments);
+- a histogram or calibration edge is merged away (policy ``merge``: the bins either side
+  become one) or the bins either side are suppressed (policy ``suppress``); calibration
+  bins count both classes, so their edge goes if either class loses it;
+- the note lists the cuts each class lost (``positive_cuts_withheld``,
+  ``negative_cuts_withheld``), so the coordinator can say which thresholds were merged.
+
+Every count still released is then a difference of cumulative counts at kept cuts, i.e.
+a union of cells that each hold 0 or at least ``m`` cases.
+
+Agreement tables of the model at a threshold against a binary reader form one more cut
+series per reader (cases the reader called 0, and called 1): a table whose threshold would
+split off a small number of either is withheld as a whole.
+
+The cells are computed from the release itself, so the rule needs no access to the data;
+with differential privacy on, it runs on the noisy counts (post-processing).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from site_agent.contract.release import SiteRelease
+from site_agent.disclosure.policy import SmallCellAction
+from site_agent.disclosure.refusals import RefusalCode, refusal
+from site_agent.disclosure.subgroup_combinations import combination_isolates
+from site_agent.statistics.censored import Cell, CensoredCount
+from site_agent.statistics.summaries import (
+    CalibrationBins,
+    ConfusionCounts,
+    PatientMoments,
+    ScoreHistogram,
+    SufficientStatistics,
+    model_rater,
+)
+
+CLASSES = ("positive", "negative")
+_THRESHOLD_WEIGHT = 1000
+"""A kept threshold counts as this many kept edges: thresholds are what a protocol asks."""
+
+
+@dataclass
+class PartitionControl:
+    """What the partition rule changed in a release (merged into the disclosure note)."""
+
+    suppressed: list[str] = field(default_factory=list)
+    merged: list[str] = field(default_factory=list)
+    withheld: list[str] = field(default_factory=list)
+    cuts_withheld: dict[str, tuple[float, ...]] = field(default_factory=dict)
+
+
+def control_partition(
+    release: SiteRelease, m: int, action: SmallCellAction
+) -> tuple[SiteRelease, PartitionControl]:
+    """Apply the rule of the module docstring to a release; return it and what changed.
+
+    Callers have checked the site's and each subgroup's totals and the subgroup
+    combinations on totals, so the coarsest partition (one cell) always passes.
+
+    Raises
+    ------
+    DisclosureRefused
+        ``protocol_invalid`` when a subgroup's cuts differ from the site's.
+    """
+    site = release.statistics
+    cuts = _cuts(site)
+    if any(_cuts(sub.statistics) != cuts for sub in release.subgroups):
+        raise refusal(RefusalCode.PROTOCOL_INVALID)
+    thresholds = set(site.thresholds)
+    weights = np.array(
+        [0.0, *(1.0 + _THRESHOLD_WEIGHT * (c in thresholds) for c in cuts)], dtype=np.float64
+    )
+    by_attribute: dict[str, list[SufficientStatistics]] = {}
+    for sub in release.subgroups:
+        by_attribute.setdefault(sub.attribute, []).append(sub.statistics)
+    out = PartitionControl()
+    kept: dict[str, frozenset[float]] = {}
+    for which, name in enumerate(CLASSES):
+        site_row = _cells(site, cuts, which)
+        level_rows = [[_cells(s, cuts, which) for s in levels] for levels in by_attribute.values()]
+        rows = [site_row, *(r for levels in level_rows for r in levels)]
+        rows += [site_row - np.sum(levels, axis=0) for levels in level_rows]
+        starts = _kept_starts(np.array(rows), weights, m)
+        if release.subgroups:
+            starts = _merge_combinations(starts, site_row, level_rows, m)
+        kept[name] = frozenset(cuts[s - 1] for s in starts if s > 0)
+        out.cuts_withheld[name] = tuple(c for c in cuts if c not in kept[name])
+    controlled = release.model_copy(
+        update={
+            "statistics": _apply(site, kept, action, m, "statistics", out),
+            "subgroups": tuple(
+                sub.model_copy(
+                    update={
+                        "statistics": _apply(
+                            sub.statistics, kept, action, m, f"subgroups[{i}].statistics", out
+                        )
+                    }
+                )
+                for i, sub in enumerate(release.subgroups)
+            ),
+        }
+    )
+    return controlled, out
+
+
+def _cuts(stats: SufficientStatistics) -> tuple[float, ...]:
+    """Return every cut on the score axis that ``stats`` reports, increasing."""
+    cuts = {t for t in stats.thresholds if t > 0}
+    cuts.update(stats.histogram.edges[1:-1], stats.calibration.edges[1:-1])
+    return tuple(sorted(cuts))
+
+
+def _tail(row: Sequence[int]) -> list[int]:
+    """Return ``sum(row[j:])`` for every ``j``."""
+    return [int(v) for v in np.cumsum(np.asarray(row[::-1], dtype=np.int64))[::-1]]
+
+
+def cumulative_counts(
+    stats: SufficientStatistics, cuts: Sequence[float], which: int
+) -> tuple[int, ...]:
+    """Return how many cases of a class score at or above each cut (``which``: 0 positive).
+
+    The count is read from the thresholds, else the histogram, else the calibration bins
+    (they agree on exact counts; noisy ones may not). Every cut must be one ``stats``
+    reports.
+    """
+    at_or_above: dict[float, int] = {}
+    cal = stats.calibration
+    cal_row = (
+        cal.label_sum
+        if which == 0
+        else tuple(n - k for n, k in zip(cal.count, cal.label_sum, strict=True))
+    )
+    for edge, tail in zip(cal.edges[1:-1], _tail(cal_row)[1:], strict=True):
+        at_or_above[edge] = tail
+    hist = stats.histogram
+    hist_row = hist.positive if which == 0 else hist.negative
+    for edge, tail in zip(hist.edges[1:-1], _tail(hist_row)[1:], strict=True):
+        at_or_above[edge] = tail
+    for c in stats.confusion:
+        if c.threshold > 0:
+            at_or_above[c.threshold] = _exact(c.tp if which == 0 else c.fp)
+    return tuple(at_or_above[c] for c in cuts)
+
+
+def _exact(cell: Cell) -> int:
+    """Return an exact cell; the partition runs before any cell is censored."""
+    if isinstance(cell, CensoredCount):
+        raise TypeError("the partition rule runs on exact counts, before small-cell control")
+    return cell
+
+
+def score_cuts(stats: SufficientStatistics) -> tuple[float, ...]:
+    """Return every cut on the score axis that ``stats`` reports, increasing."""
+    return _cuts(stats)
+
+
+def _cells(
+    stats: SufficientStatistics, cuts: tuple[float, ...], which: int
+) -> npt.NDArray[np.int64]:
+    """Return the class's count in each cell ``[0, c₁), [c₁, c₂), …, [c_k, 1]``."""
+    total = stats.n_positive if which == 0 else stats.n_negative
+    cumulative = np.array([total, *cumulative_counts(stats, cuts, which), 0], dtype=np.int64)
+    return cumulative[:-1] - cumulative[1:]
+
+
+def _kept_starts(
+    rows: npt.NDArray[np.int64], weights: npt.NDArray[np.float64], m: int
+) -> list[int]:
+    """Return the first cell of each group of a partition into contiguous groups.
+
+    Every row's sum over every group is 0 or at least ``m`` in absolute value; among
+    such partitions, the one with the largest total weight of kept cuts (``weights[i]``
+    is the cut before cell ``i``). Exact dynamic programming, O(cells² · rows).
+    """
+    cells = rows.shape[1]
+    prefix = np.zeros((rows.shape[0], cells + 1), dtype=np.int64)
+    prefix[:, 1:] = np.cumsum(rows, axis=1)
+    best = np.full(cells + 1, -np.inf)
+    best[0] = 0.0
+    back = np.zeros(cells + 1, dtype=np.int64)
+    for end in range(1, cells + 1):
+        sums = prefix[:, end : end + 1] - prefix[:, :end]
+        ok = np.all((sums == 0) | (np.abs(sums) >= m), axis=0)
+        candidate = np.where(ok, best[:end] + weights[:end], -np.inf)
+        start = int(np.argmax(candidate))
+        best[end], back[end] = candidate[start], start
+    if not np.isfinite(best[cells]):  # only when a row's total is itself small (noisy)
+        return [0]
+    starts, end = [], cells
+    while end > 0:
+        end = int(back[end])
+        starts.append(end)
+    return starts[::-1]
+
+
+def _merge_combinations(
+    starts: list[int],
+    site_row: npt.NDArray[np.int64],
+    level_rows: list[list[npt.NDArray[np.int64]]],
+    m: int,
+) -> list[int]:
+    """Merge groups with a neighbour until no subgroup combination in a group is small."""
+    starts = list(starts)
+
+    def isolates(i: int) -> bool:
+        lo = starts[i]
+        hi = starts[i + 1] if i + 1 < len(starts) else len(site_row)
+        total = int(site_row[lo:hi].sum())
+        attributes = []
+        for levels in level_rows:
+            parts = [int(r[lo:hi].sum()) for r in levels]
+            attributes.append([*parts, total - sum(parts)])
+        return combination_isolates(total, attributes, m)
+
+    i = 0
+    while i < len(starts):
+        if len(starts) > 1 and isolates(i):
+            del starts[i + 1 if i + 1 < len(starts) else i]
+            i = max(i - 1, 0)
+        else:
+            i += 1
+    return starts
+
+
+def _apply(
+    stats: SufficientStatistics,
+    kept: dict[str, frozenset[float]],
+    action: SmallCellAction,
+    m: int,
+    path: str,
+    out: PartitionControl,
+) -> SufficientStatistics:
+    both = kept["positive"] & kept["negative"]
+    stats = control_agreement(stats, m, path, out, allowed=both)
+    return stats.model_copy(
+        update={
+            "confusion": tuple(
+                _confusion(c, kept, f"{path}.confusion[{i}]", out, stats.confusion)
+                for i, c in enumerate(stats.confusion)
+            ),
+            "histogram": _histogram(stats.histogram, kept, action, f"{path}.histogram", out),
+            "calibration": _calibration(
+                stats.calibration, both, action, f"{path}.calibration", out
+            ),
+        }
+    )
+
+
+_CLASS_CELLS = {"positive": ("tp", "fn"), "negative": ("fp", "tn")}
+
+
+def _confusion(
+    c: ConfusionCounts,
+    kept: dict[str, frozenset[float]],
+    path: str,
+    out: PartitionControl,
+    table: tuple[ConfusionCounts, ...] = (),
+) -> ConfusionCounts:
+    """Withhold a threshold's cells in each class whose cut is withheld: censored, not 0.
+
+    The count at or above a withheld cut lies between the counts at the nearest thresholds
+    of this release kept above and below it in that class (0 and the class total past the
+    ends); those are released exactly (cells between kept cuts hold 0 or at least ``m``
+    cases, so no later small-cell rule touches them), so the range discloses nothing new.
+    """
+    if c.threshold <= 0:
+        return c
+    gone = [name for name in CLASSES if c.threshold not in kept[name]]
+    if not gone:
+        return c
+    out.suppressed.extend(f"{path}.{k}" for name in gone for k in _CLASS_CELLS[name])
+    out.withheld.append(f"{path}.patient_moments")
+    cells: dict[str, Cell] = {"tp": c.tp, "fp": c.fp, "fn": c.fn, "tn": c.tn}
+    for name in gone:
+        above, below = _CLASS_CELLS[name]
+        total = _class_total(c, name)
+        lower_bound, upper_bound = 0, total
+        for other in table:
+            if other.threshold <= 0 or other.threshold not in kept[name]:
+                continue
+            count = other.tp if name == "positive" else other.fp
+            if not isinstance(count, int):
+                continue
+            if other.threshold > c.threshold:
+                lower_bound = max(lower_bound, count)
+            elif other.threshold < c.threshold:
+                upper_bound = min(upper_bound, count)
+        cells[above] = CensoredCount(low=lower_bound, high=upper_bound, class_total=total)
+        cells[below] = CensoredCount(
+            low=total - upper_bound, high=total - lower_bound, class_total=total
+        )
+    empty = PatientMoments()
+    return ConfusionCounts(
+        threshold=c.threshold,
+        **cells,
+        sensitivity=empty,
+        specificity=empty,
+        ppv=empty,
+        npv=empty,
+    )
+
+
+def _class_total(c: ConfusionCounts, name: str) -> int:
+    above, below = _CLASS_CELLS[name]
+    total = 0
+    for cell in (getattr(c, above), getattr(c, below)):
+        if isinstance(cell, CensoredCount):
+            return cell.class_total
+        total += cell
+    return total
+
+
+def _next_to_removed(edges: tuple[float, ...], keep: frozenset[float]) -> set[int]:
+    """Return the bins on either side of an interior edge not in ``keep``."""
+    bins: set[int] = set()
+    for j, edge in enumerate(edges[1:-1], start=1):
+        if edge not in keep:
+            bins.update((j - 1, j))
+    return bins
+
+
+def _histogram(
+    h: ScoreHistogram,
+    kept: dict[str, frozenset[float]],
+    action: SmallCellAction,
+    path: str,
+    out: PartitionControl,
+) -> ScoreHistogram:
+    both = kept["positive"] & kept["negative"]
+    if all(e in both for e in h.edges[1:-1]):
+        return h
+    if action is SmallCellAction.MERGE:
+        out.merged.append(path)
+        return h.coarsened((0.0, *(e for e in h.edges[1:-1] if e in both), 1.0))
+    pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
+    rows = []
+    for name, row in (("positive", h.positive), ("negative", h.negative)):
+        gone = _next_to_removed(h.edges, kept[name])
+        out.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(gone))
+        rows.append(tuple(0 if i in gone else v for i, v in enumerate(row)))
+    return ScoreHistogram(
+        edges=h.edges,
+        positive=rows[0],
+        negative=rows[1],
+        all=tuple(p + n + q for p, n, q in zip(rows[0], rows[1], pending, strict=True)),
+    )
+
+
+def _calibration(
+    c: CalibrationBins,
+    both: frozenset[float],
+    action: SmallCellAction,
+    path: str,
+    out: PartitionControl,
+) -> CalibrationBins:
+    if all(e in both for e in c.edges[1:-1]):
+        return c
+    if action is SmallCellAction.MERGE:
+        out.merged.append(path)
+        return c.coarsened((0.0, *(e for e in c.edges[1:-1] if e in both), 1.0))
+    gone = _next_to_removed(c.edges, both)
+    out.suppressed.extend(f"{path}[{i}]" for i in sorted(gone))
+
+    def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
+        return tuple(type(v)(0) if i in gone else v for i, v in enumerate(values))
+
+    return CalibrationBins(
+        edges=c.edges,
+        count=keep(c.count),
+        score_sum=keep(c.score_sum),
+        label_sum=keep(c.label_sum),
+        squared_error_sum=keep(c.squared_error_sum),
+    )
+
+
+def control_agreement(
+    stats: SufficientStatistics,
+    m: int,
+    path: str,
+    out: PartitionControl,
+    *,
+    allowed: frozenset[float],
+) -> SufficientStatistics:
+    """Withhold model-versus-reader tables whose threshold splits off a small count.
+
+    A table is kept only at a threshold that both classes kept (``allowed``), and only
+    when the release carries no pending case: the reader's calls cross the classes and
+    count pending cases, which the release cuts only at histogram edges, so a table at a
+    threshold could be set against the class counts to isolate pending or uncalled cases.
+    Among those thresholds, for each binary reader, three series must hold 0 or at least
+    ``m`` cases (in absolute value) between kept thresholds: the cases the reader called 0,
+    those called 1, and the labelled cases minus both (the labelled cases the reader did
+    not call, when no pending case is in the release).
+    """
+    by_name = {model_rater(t): t for t in stats.thresholds}
+    series: dict[str, list[tuple[float, int]]] = {}
+    for i, table in enumerate(stats.agreement):
+        first = table.raters[0]
+        if table.scale == "binary" and first in by_name and by_name[first] > 0:
+            series.setdefault(table.raters[1], []).append((by_name[first], i))
+    confusion = {c.threshold: c for c in stats.confusion}
+    dropped: set[int] = {
+        i for ts in series.values() for t, i in ts if t not in allowed or stats.n_pending > 0
+    }
+    for reader_tables in series.values():
+        reader_tables[:] = [(t, i) for t, i in reader_tables if i not in dropped]
+        if not reader_tables:
+            continue
+        reader_tables.sort()
+        rows = []
+        lowest = stats.agreement[reader_tables[0][1]]
+        for v in (0, 1):
+            total = lowest.counts[0][v] + lowest.counts[1][v]
+            cumulative = [total, *(stats.agreement[i].counts[1][v] for _, i in reader_tables), 0]
+            rows.append(np.diff(-np.asarray(cumulative, dtype=np.int64)))
+        labelled = [
+            stats.n_positive + stats.n_negative,
+            *(_exact(confusion[t].tp) + _exact(confusion[t].fp) for t, _ in reader_tables),
+            0,
+        ]
+        rows.append(np.diff(-np.asarray(labelled, dtype=np.int64)) - rows[0] - rows[1])
+        weights = np.ones(len(reader_tables) + 1, dtype=np.float64)
+        weights[0] = 0.0
+        starts = set(_kept_starts(np.array(rows), weights, m))
+        dropped |= {i for k, (_, i) in enumerate(reader_tables, start=1) if k not in starts}
+    if not dropped:
+        return stats
+    out.withheld.extend(f"{path}.agreement[{i}]" for i in sorted(dropped))
+    return stats.model_copy(
+        update={"agreement": tuple(t for i, t in enumerate(stats.agreement) if i not in dropped)}
+    )
