@@ -7,7 +7,13 @@ through (an :class:`~simulations.image_rehearsal.ImageDrift`: by default a blurr
 noisier acquisition), so the CNN's score distribution there moves while the others stay.
 Each window is asked through the same protocol, gate and ledger as any monitoring round;
 the releases go to the SQLite results store and are analysed by
-:func:`coordinator.monitoring.analysis.analyse_windows` (PSI, binned KS, charts).
+:func:`coordinator.monitoring.analysis.analyse_windows` (PSI, binned KS, charts), with the
+monitoring thresholds as they are.
+
+Every site holds :data:`MONITORED_CASES` cases (the development site that many held out of
+CNN training), about 80 per two-month window: with the 30 or so of the one-off image study
+per window, the score histograms of stable sites moved by chance enough to raise false
+alarms. ``sitepool rehearse-drift --images`` runs this rehearsal and writes the report.
 
 Invented images of invented hospitals, for rehearsal only; sitepool is a research tool, not
 a medical device.
@@ -16,13 +22,14 @@ a medical device.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, timedelta
 from pathlib import Path
 
 from coordinator.monitoring.analysis import DriftFindings, DriftSettings, analyse_windows
 from coordinator.monitoring.results_store import SqliteResultsStore
 from coordinator.runs.engines import Engine, run_monitoring
 from simulations.image_rehearsal import (
+    ACQUISITION_DAYS,
     SUBGROUP,
     ImageDrift,
     ImageScenario,
@@ -41,6 +48,10 @@ from site_agent.contract.protocol import (
 )
 from site_agent.disclosure.policy import SmallCellAction
 
+MONITORED_CASES = 400
+"""Cases per site in the monitoring rehearsal (about 80 per two-month window)."""
+DEFAULT_BASELINE_WINDOWS = 2
+"""Windows that form each site's baseline (January to April)."""
 DEFAULT_DRIFT = ImageDrift(
     starts_at=0.6, shift=ImageShift(blur_sigma=1.5, resolution=0.5, noise_sigma=0.15)
 )
@@ -57,6 +68,8 @@ class ImageMonitoring:
     store_path: Path
     findings: DriftFindings
     drifting_site: str
+    drift_window: int
+    drift_description: str
 
 
 def monitor_images(
@@ -67,7 +80,8 @@ def monitor_images(
     drift: ImageDrift = DEFAULT_DRIFT,
     window_months: int = 2,
     windows: int = 5,
-    baseline_windows: int = 2,
+    baseline_windows: int = DEFAULT_BASELINE_WINDOWS,
+    cases_per_site: int = MONITORED_CASES,
     engine: Engine = "inprocess",
     progress: Progress | None = None,
 ) -> ImageMonitoring:
@@ -79,7 +93,17 @@ def monitor_images(
         If the engine fails or too few sites release a window.
     """
     base = scenario or default_image_scenario()
-    sites = list(base.sites)
+    held_out = 1.0 - base.development_train_fraction
+    sites = [
+        s.model_copy(
+            update={
+                "n_cases": round(cases_per_site / held_out)
+                if i == base.development_index
+                else cases_per_site
+            }
+        )
+        for i, s in enumerate(base.sites)
+    ]
     sites[drifting_site] = sites[drifting_site].model_copy(update={"drift": drift})
     chosen = base.model_copy(update={"sites": tuple(sites)})
     out = Path(out)
@@ -132,4 +156,20 @@ def monitor_images(
         store_path=store_path,
         findings=findings,
         drifting_site=sites[drifting_site].name,
+        drift_window=_window_of(drift.starts_at, window_months),
+        drift_description=_describe(drift.shift),
     )
+
+
+def _window_of(starts_at: float, window_months: int) -> int:
+    """The 1-based window holding the first changed case (cases span 300 days from FIRST_WINDOW)."""
+    first = FIRST_WINDOW + timedelta(days=int(starts_at * ACQUISITION_DAYS))
+    months = (first.year - FIRST_WINDOW.year) * 12 + first.month - FIRST_WINDOW.month
+    return months // window_months + 1
+
+
+def _describe(shift: ImageShift) -> str:
+    changed = {
+        k: v for k, v in shift.model_dump().items() if v != ImageShift.model_fields[k].default
+    }
+    return ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in changed.items())

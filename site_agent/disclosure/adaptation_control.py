@@ -5,12 +5,15 @@
 whose test-set totals are small and suppresses small confusion cells with their partners in
 the same class (their counts become 0 and the sensitivity and specificity that rest on them
 are withheld). The gate (:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on
-every ``fine_tune`` reply before the release leaves.
+every ``fine_tune`` reply before the release leaves. :func:`preview_adaptation` is what
+``sitepool site fine-tune --policy`` shows: the same control, after the two policy checks
+the gate makes on a ``fine_tune`` release (operation allowed, no noise on counts asked).
 """
 
 from __future__ import annotations
 
 from site_agent.contract.adaptation_release import AdaptationRelease, Performance
+from site_agent.contract.protocol import Operation
 from site_agent.contract.release import EstimateRecord
 from site_agent.disclosure.policy import SitePolicy, suppressed_confusion_cells
 from site_agent.disclosure.refusals import RefusalCode, refusal
@@ -46,6 +49,28 @@ def control_adaptation(
     )
     out = release.model_copy(update={"before": before, "points": points})
     return AdaptationRelease.model_validate(out.model_dump()), tuple(suppressed)
+
+
+def preview_adaptation(
+    release: AdaptationRelease, policy: SitePolicy
+) -> tuple[AdaptationRelease, tuple[str, ...]]:
+    """Return what the gate would let leave of a local fine-tuning release, and what it cut.
+
+    The gate refuses ``fine_tune`` when the policy does not allow the operation, and when
+    the policy adds noise to counts (no differential privacy covers these metrics); then it
+    applies :func:`control_adaptation`. Approval of the protocol is checked by the gate on a
+    live request and is not part of a preview.
+
+    Raises
+    ------
+    DisclosureRefused
+        With the reason the gate would give.
+    """
+    if Operation.FINE_TUNE not in policy.allowed_operations:
+        raise refusal(RefusalCode.OPERATION_NOT_ALLOWED, Operation.FINE_TUNE.value)
+    if policy.privacy.enabled:
+        raise refusal(RefusalCode.NOT_COVERED_BY_PRIVACY, Operation.FINE_TUNE.value)
+    return control_adaptation(release, policy)
 
 
 def _ok(value: int, min_cell: int) -> bool:
