@@ -17,8 +17,8 @@ analysis and the same report files follow.
 from __future__ import annotations
 
 import time
-from pathlib import Path
 from collections.abc import Callable
+from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
