@@ -6,7 +6,7 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.sitepool-installed
 DEMO_OUT ?= demo-output
 
-.PHONY: venv demo test lint typecheck unit bench clean
+.PHONY: venv demo demo-table test lint typecheck unit bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -18,8 +18,12 @@ $(STAMP): pyproject.toml
 
 venv: $(STAMP)
 
+# The image rehearsal is the demo (the real case of the job); the feature-table one stays.
 demo: venv
-	$(BIN)/sitepool rehearse --out $(DEMO_OUT)
+	$(BIN)/sitepool rehearse --images --out $(DEMO_OUT)
+
+demo-table: venv
+	$(BIN)/sitepool rehearse --out $(DEMO_OUT)-table
 
 lint: venv
 	$(BIN)/ruff check .
@@ -39,6 +43,7 @@ bench: venv
 	$(BIN)/python -m simulations.benchmarks.drift
 	$(BIN)/python -m simulations.benchmarks.planning
 	$(BIN)/python -m simulations.benchmarks.resolution
+	$(BIN)/python -m simulations.benchmarks.images
 
 clean:
-	rm -rf $(VENV) $(DEMO_OUT) .mypy_cache .pytest_cache .ruff_cache
+	rm -rf $(VENV) $(DEMO_OUT) $(DEMO_OUT)-table .mypy_cache .pytest_cache .ruff_cache

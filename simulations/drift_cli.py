@@ -7,11 +7,17 @@ every window through the coordinator and site agents, in two passes as labels ma
 are what ``sitepool monitor --store OUT/monitoring.sqlite --study ID`` writes, with lines
 on the injected changes and the passes in the report's header. With ``--webhook URL`` each
 alarm's onset is posted as JSON; a failed delivery is logged and the command goes on.
+
+With ``--images`` the monitored model is the image rehearsal's CNN instead
+(:func:`simulations.image_monitoring.monitor_images`): invented phantom images at the image
+rehearsal's hospitals, one of which changes scanner partway through the year; the same
+analysis and the same report files follow.
 """
 
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -35,6 +41,10 @@ REHEARSE_DRIFT_HELP = (
     "Rehearse drift monitoring on invented hospitals that change scanner or case mix over "
     "monthly windows, then analyse the windows as `sitepool monitor` does and write "
     "drift-report.html, drift.json and CSVs."
+)
+IMAGE_NOTE = (
+    "Rehearsal on invented hospitals holding invented phantom images (procedurally drawn "
+    "lesions, simulated scanners); no result here describes a real hospital or patient."
 )
 SYNTHETIC_NOTE = (
     "Rehearsal on invented hospitals (synthetic partitions of the Wisconsin Diagnostic "
@@ -68,6 +78,16 @@ def rehearse_drift_command(
     webhook: Annotated[
         str | None, typer.Option("--webhook", help="URL to post each alarm's onset to.")
     ] = None,
+    images: Annotated[
+        bool,
+        typer.Option(
+            "--images",
+            help=(
+                "Monitor the image rehearsal's CNN on invented phantom images instead of the "
+                "feature table; one site changes scanner partway through the year."
+            ),
+        ),
+    ] = False,
 ) -> None:
     """Run the drift rehearsal, analyse its windows and write the drift report."""
     from coordinator.monitoring.alerts import WebhookAlerter
@@ -83,11 +103,34 @@ def rehearse_drift_command(
     console, progress = progress_console(started)
     if engine not in ("inprocess", "loopback"):
         fail(f"unknown engine {engine!r}: use inprocess or loopback")
-    baseline = DEFAULT_BASELINE_WINDOWS if baseline_windows is None else baseline_windows
+    if images and scenario is not None:
+        fail("--scenario is for the feature-table rehearsal; --images uses its own sites")
+    if images:
+        from simulations.image_monitoring import DEFAULT_BASELINE_WINDOWS as IMAGE_BASELINE
+
+        default_baseline = IMAGE_BASELINE
+    else:
+        default_baseline = DEFAULT_BASELINE_WINDOWS
+    baseline = default_baseline if baseline_windows is None else baseline_windows
     out.mkdir(parents=True, exist_ok=True)
     with monitoring_log(out / LOG_FILE, progress):
         try:
             alerter = WebhookAlerter(webhook) if webhook else None
+            if images:
+                study_id, store_path, context = _image_monitoring(
+                    out, seed, engine, baseline, progress
+                )
+                findings, files = report_drift(
+                    store_path,
+                    study_id,
+                    out,
+                    settings=DriftSettings(baseline_windows=baseline),
+                    alerter=alerter,
+                    context=context,
+                    progress=progress,
+                )
+                print_drift_summary(console, findings, files, started)
+                return
             chosen = Scenario.load(scenario) if scenario is not None else drift_scenario()
             if seed is not None:
                 chosen = chosen.model_copy(update={"seed": seed})
@@ -110,6 +153,35 @@ def rehearse_drift_command(
         except SitepoolError as exc:
             fail(str(exc))
     print_drift_summary(console, findings, files, started)
+
+
+def _image_monitoring(
+    out: Path, seed: int | None, engine: str, baseline: int, progress: Callable[[str], None]
+) -> tuple[str, Path, list[str]]:
+    """Run the image monitoring rehearsal; return its study id, store and report context."""
+    from simulations.image_monitoring import monitor_images
+    from simulations.image_rehearsal import default_image_scenario
+
+    scenario = default_image_scenario()
+    if seed is not None:
+        scenario = scenario.model_copy(update={"seed": seed})
+    result = monitor_images(
+        out,
+        scenario=scenario,
+        engine=engine,  # type: ignore[arg-type]
+        baseline_windows=baseline,
+        progress=progress,
+    )
+    plan = result.protocol.monitoring
+    assert plan is not None  # monitor_images registers a monitoring protocol
+    context = [
+        IMAGE_NOTE,
+        f"Injected: {result.drifting_site} changes scanner from window "
+        f"{result.drift_window}: {result.drift_description}.",
+        f"Windows of {plan.window_months} months from {plan.first_window_start}; "
+        f"the first {baseline} form each site's baseline.",
+    ]
+    return result.protocol.study_id, result.store_path, context
 
 
 def rehearsal_context(study: MonitoredStudy) -> list[str]:

@@ -7,7 +7,17 @@ through (an :class:`~simulations.image_rehearsal.ImageDrift`: by default a blurr
 noisier acquisition), so the CNN's score distribution there moves while the others stay.
 Each window is asked through the same protocol, gate and ledger as any monitoring round;
 the releases go to the SQLite results store and are analysed by
-:func:`coordinator.monitoring.analysis.analyse_windows` (PSI, binned KS, charts).
+:func:`coordinator.monitoring.analysis.analyse_windows` (PSI, binned KS, charts), with the
+monitoring thresholds as they are.
+
+Every site holds :data:`MONITORED_CASES` cases (the development site that many besides
+its CNN training cases), about 200 per two-month window, binned in four score bins
+(:data:`HISTOGRAM_EDGES`), and the baseline is the half year before the change
+(:data:`DEFAULT_BASELINE_WINDOWS`). With the 30 to 80 cases per window tried first, small
+cells suppressed at the sites reshaped stable sites' histograms and PSI raised false alarms;
+with two baseline windows, the binned KS test flagged a stable site (p about 0.001 in two
+windows against the same short baseline). ``sitepool rehearse-drift --images`` runs this
+rehearsal and writes the report.
 
 Invented images of invented hospitals, for rehearsal only; sitepool is a research tool, not
 a medical device.
@@ -16,13 +26,14 @@ a medical device.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, timedelta
 from pathlib import Path
 
 from coordinator.monitoring.analysis import DriftFindings, DriftSettings, analyse_windows
 from coordinator.monitoring.results_store import SqliteResultsStore
 from coordinator.runs.engines import Engine, run_monitoring
 from simulations.image_rehearsal import (
+    ACQUISITION_DAYS,
     SUBGROUP,
     ImageDrift,
     ImageScenario,
@@ -37,14 +48,22 @@ from site_agent.contract.protocol import (
     MonitoringPlan,
     Operation,
     StudyProtocol,
-    uniform_edges,
 )
 from site_agent.disclosure.policy import SmallCellAction
 
+HISTOGRAM_EDGES = (0.0, 0.119203, 0.5, 0.880797, 1.0)
+"""Four score bins, split at logits -2, 0 and 2 (sigmoid values to six places). The site
+suppresses cells below its minimum of 5 in each class row; with ten even bins, sparse bins
+came and went and PSI raised false alarms at stable sites."""
+MONITORED_CASES = 1000
+"""Cases per site in the monitoring rehearsal (about 200 per two-month window)."""
+DEFAULT_BASELINE_WINDOWS = 3
+"""Windows that form each site's baseline: January to June, before the scanner change."""
 DEFAULT_DRIFT = ImageDrift(
-    starts_at=0.6, shift=ImageShift(blur_sigma=1.5, resolution=0.5, noise_sigma=0.15)
+    starts_at=0.61, shift=ImageShift(blur_sigma=1.5, resolution=0.5, noise_sigma=0.15)
 )
-"""The default scanner change: blur, resolution loss and noise from 60% of the year on."""
+"""The default scanner change: blur, resolution loss and noise from 3 July 2031 (61% of the
+sites' 300 acquisition days), so the half-year baseline holds no changed case."""
 FIRST_WINDOW = date(2031, 1, 1)
 """Cases of the image rehearsal are acquired over the first 300 days of 2031."""
 
@@ -57,6 +76,8 @@ class ImageMonitoring:
     store_path: Path
     findings: DriftFindings
     drifting_site: str
+    drift_window: int
+    drift_description: str
 
 
 def monitor_images(
@@ -67,7 +88,8 @@ def monitor_images(
     drift: ImageDrift = DEFAULT_DRIFT,
     window_months: int = 2,
     windows: int = 5,
-    baseline_windows: int = 2,
+    baseline_windows: int = DEFAULT_BASELINE_WINDOWS,
+    cases_per_site: int = MONITORED_CASES,
     engine: Engine = "inprocess",
     progress: Progress | None = None,
 ) -> ImageMonitoring:
@@ -79,9 +101,20 @@ def monitor_images(
         If the engine fails or too few sites release a window.
     """
     base = scenario or default_image_scenario()
-    sites = list(base.sites)
+    development = base.sites[base.development_index]
+    n_train = int(development.n_cases * base.development_train_fraction)
+    sites = [
+        s.model_copy(update={"n_cases": cases_per_site + (n_train if s is development else 0)})
+        for s in base.sites
+    ]
     sites[drifting_site] = sites[drifting_site].model_copy(update={"drift": drift})
-    chosen = base.model_copy(update={"sites": tuple(sites)})
+    # The CNN trains on as many cases as in the one-off study; the rest are monitored.
+    chosen = base.model_copy(
+        update={
+            "sites": tuple(sites),
+            "development_train_fraction": n_train / (cases_per_site + n_train),
+        }
+    )
     out = Path(out)
 
     def protocol_for(sha256: str) -> StudyProtocol:
@@ -89,7 +122,7 @@ def monitor_images(
             study_id=f"image-monitoring-{chosen.seed}",
             title=f"Drift monitoring of an image model at {len(sites)} invented hospitals",
             model=ModelReference(name="phantom-cnn", architecture="cnn", sha256=sha256),
-            evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(10)),
+            evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES),
             operations=(Operation.MONITOR,),
             rounds=windows,
             quorum=1,
@@ -132,4 +165,20 @@ def monitor_images(
         store_path=store_path,
         findings=findings,
         drifting_site=sites[drifting_site].name,
+        drift_window=_window_of(drift.starts_at, window_months),
+        drift_description=_describe(drift.shift),
     )
+
+
+def _window_of(starts_at: float, window_months: int) -> int:
+    """Return the 1-based window of the first changed case (cases span ACQUISITION_DAYS)."""
+    first = FIRST_WINDOW + timedelta(days=int(starts_at * ACQUISITION_DAYS))
+    months = (first.year - FIRST_WINDOW.year) * 12 + first.month - FIRST_WINDOW.month
+    return months // window_months + 1
+
+
+def _describe(shift: ImageShift) -> str:
+    changed = {
+        k: v for k, v in shift.model_dump().items() if v != ImageShift.model_fields[k].default
+    }
+    return ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in changed.items())

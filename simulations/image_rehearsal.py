@@ -6,7 +6,7 @@ Each site of the :class:`ImageScenario` draws its own phantom cases
 as a hospital would: DICOM files (written with pydicom, the vendor in the header), PNG
 files or NumPy arrays, listed in an image manifest. The development site trains the small
 CNN (:func:`site_agent.training.image_models.build_cnn`) on part of its cases; the bundle
-(with its preprocessing, fine-tuning limited to the last layer) then goes through the same
+(with its preprocessing; fine-tuning of every layer under the L2-SP pull) then goes through the same
 protocol, site agents, disclosure gate, ledgers and coordinator as the feature-table
 rehearsal, and the same report is written.
 
@@ -64,7 +64,27 @@ from site_agent.training.model_bundle import (
 Progress = Callable[[str], None]
 SUBGROUP = "scanner_vendor"
 INPUT_SIZE = 32
+ACQUISITION_DAYS = 300
+"""Each site's cases are acquired, in order, over this many days from 1 January 2031."""
 CNN_CHANNELS = (8, 16, 32)
+
+
+DEFAULT_ADAPTATION = AdaptationPlan(
+    case_counts=(0, 40, 80),
+    include_all=False,
+    repeats=2,
+    epochs=40,
+    learning_rate=0.003,
+    l2_to_initial=0.1,
+    federated_rounds=3,
+    local_epochs=10,
+)
+"""The image study's fine-tuning plan: every layer, small Adam steps, L2-SP pull 0.1.
+
+40 full-batch steps at learning rate 0.003 for 0, 40 and 80 local cases (two seeds each),
+and 3 federated rounds of 10 local steps: enough to move the CNN at a shifted site, small
+enough that a rehearsal stays within a minute of CPU.
+"""
 
 
 class ImageDrift(BaseModel):
@@ -98,17 +118,47 @@ class ImageScenario(BaseModel):
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    seed: int = 2031
+    seed: int = Field(default=2031, description="Seeds the phantoms, shifts and training.")
     sites: tuple[ImageSiteSpec, ...]
-    development_index: int = 0
-    development_train_fraction: float = Field(default=0.6, gt=0.0, lt=1.0)
-    train_epochs: int = Field(default=25, ge=1)
-    batch_size: int = Field(default=32, ge=1)
-    learning_rate: float = Field(default=0.01, gt=0.0)
+    development_index: int = Field(default=0, ge=0, description="Site that trains the CNN.")
+    development_train_fraction: float = Field(
+        default=0.6,
+        gt=0.0,
+        lt=1.0,
+        description="Share of the development site's cases that train the CNN; the rest "
+        "are its held-out evaluation cases.",
+    )
+    train_epochs: int = Field(default=40, ge=1, description="Passes over the training cases.")
+    batch_size: int = Field(default=32, ge=1, description="Mini-batch size of CNN training.")
+    learning_rate: float = Field(default=0.01, gt=0.0, description="Adam step of CNN training.")
+    adaptation: AdaptationPlan = Field(
+        default_factory=lambda: DEFAULT_ADAPTATION,
+        description="Site-local and federated fine-tuning plan of the study protocol.",
+    )
 
 
 def default_image_scenario() -> ImageScenario:
-    """Four invented hospitals, one per storage kind, each with its own scanner shift."""
+    """Four invented hospitals, one per storage kind, each with its own scanner shift.
+
+    What drives the loss at the external sites: the development CNN leans on the fine
+    texture inside a lesion (:mod:`simulations.phantoms`), and each external scanner
+    weakens that cue differently (AUC lost on the same phantoms, measured with seed 2031
+    while the scenario was set; the rehearsal's report gives the figures of each run):
+
+    - Riverside (DICOM, another vendor): a coil-like bias field (amplitude 0.35), resolution
+      loss to 70%, which averages the texture out, and Rician noise at 6% of the 99th
+      percentile (magnitude MR images); about 0.07 AUC lost.
+    - Lowmoor (PNG): Gaussian blur (sigma 0.6 pixel), resolution loss to 75% and gamma 1.4,
+      which smooth the texture away; about 0.11 lost, the most degraded site.
+    - Kestrel Valley (DICOM): Gaussian blur (0.6 pixel), Gibbs ringing (30% of k-space
+      cut), contrast 0.7 and Gaussian noise at 4%; about 0.05 lost.
+
+    The losses are against the development site's held-out cases (AUC about 0.96); the
+    noise also moves scores (calibration), which the 0.5 threshold's cells show.
+
+    External sites hold 200 cases each, so at the default 40% held-out test share each
+    class has well over the default minimum cell of 5 at the 0.5 threshold.
+    """
     return ImageScenario(
         sites=(
             ImageSiteSpec(
@@ -122,29 +172,31 @@ def default_image_scenario() -> ImageScenario:
             ImageSiteSpec(
                 name="Riverside Infirmary",
                 slug="riverside",
-                n_cases=160,
-                prevalence=0.35,
+                n_cases=200,
+                prevalence=0.4,
                 storage="dicom",
                 manufacturer="Meridian Medical Systems",
-                shift=ImageShift(bias_amplitude=0.35, noise_sigma=0.06, noise="rician"),
+                shift=ImageShift(
+                    bias_amplitude=0.35, resolution=0.7, noise_sigma=0.06, noise="rician"
+                ),
             ),
             ImageSiteSpec(
                 name="Lowmoor Community Hospital",
                 slug="lowmoor",
-                n_cases=160,
-                prevalence=0.3,
+                n_cases=200,
+                prevalence=0.35,
                 storage="png",
                 manufacturer="Northwind Imaging",
-                shift=ImageShift(blur_sigma=0.9, resolution=0.6, gamma=1.4),
+                shift=ImageShift(blur_sigma=0.6, resolution=0.75, gamma=1.4),
             ),
             ImageSiteSpec(
                 name="Kestrel Valley Clinic",
                 slug="kestrel-valley",
-                n_cases=160,
+                n_cases=200,
                 prevalence=0.45,
                 storage="dicom",
                 manufacturer="Meridian Medical Systems",
-                shift=ImageShift(ringing=0.3, contrast=0.7, noise_sigma=0.08),
+                shift=ImageShift(blur_sigma=0.6, ringing=0.3, contrast=0.7, noise_sigma=0.04),
             ),
         )
     )
@@ -247,7 +299,10 @@ def prepare_image_study(
         architecture=Architecture.CNN,
         image=spec,
         cnn_channels=CNN_CHANNELS,
-        fine_tune_layers=FineTuneLayers.HEAD,
+        # Every layer, pulled towards the start weights (the protocol's L2-SP): with the head
+        # alone the AUC did not move at any site (this small CNN's pooled features are close
+        # to one-dimensional, so re-weighting them cannot re-rank cases).
+        fine_tune_layers=FineTuneLayers.ALL,
     )
     bundle_path = out / "model" / "model-bundle.zip"
     bundle_path.parent.mkdir(parents=True, exist_ok=True)
@@ -294,7 +349,9 @@ def _train_cnn(
         optimizer = torch.optim.Adam(model.parameters(), lr=scenario.learning_rate)
         model.train()
         for _ in range(scenario.train_epochs):
-            for batch in np.array_split(order.permutation(len(y)), max(1, len(y) // 32)):
+            for batch in np.array_split(
+                order.permutation(len(y)), max(1, len(y) // scenario.batch_size)
+            ):
                 optimizer.zero_grad()
                 rows = torch.from_numpy(batch)
                 loss = torch.nn.functional.binary_cross_entropy_with_logits(model(x[rows]), y[rows])
@@ -313,13 +370,7 @@ def _protocol(scenario: ImageScenario, sha256: str, adapt: bool) -> StudyProtoco
         ),
         quorum=2,
         operations=(Operation.EVALUATE, Operation.FINE_TUNE) if adapt else (Operation.EVALUATE,),
-        adaptation=(
-            AdaptationPlan(
-                case_counts=(0, 25, 50), repeats=2, epochs=40, federated_rounds=4, local_epochs=10
-            )
-            if adapt
-            else None
-        ),
+        adaptation=scenario.adaptation if adapt else None,
     )
 
 
@@ -345,7 +396,9 @@ def _lay_out_site(
             "case_id": name,
             "patient_id": f"{spec.slug}-p{i // 2:04d}",
             "label": int(label),
-            "acquired_on": (start + timedelta(days=int(i * 300 / len(labels)))).isoformat(),
+            "acquired_on": (
+                start + timedelta(days=int(i * ACQUISITION_DAYS / len(labels)))
+            ).isoformat(),
             "image": relative,
         }
         if spec.storage != "dicom":  # no header: the site records the vendor itself

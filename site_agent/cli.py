@@ -13,6 +13,7 @@ from rich.console import Console
 from rich.table import Table
 
 from site_agent.connect_cli import add_connection_commands
+from site_agent.contract.adaptation_release import Performance
 from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
 from site_agent.contract.release import (
     UNREGISTERED_PROTOCOL,
@@ -166,6 +167,14 @@ def _auc_text(a: AucRecord, *, logit: bool = False) -> str:
     if lower is None or upper is None:
         return f"{a.auc:.3f} (no interval: {a.reason})"
     return f"{a.auc:.3f} [{lower:.3f}, {upper:.3f}]"
+
+
+def _at_thresholds(perf: Performance) -> str:
+    """Sensitivity and specificity at each threshold; a withheld one shows its reason."""
+    return "; ".join(
+        f"at {t.threshold:g}: sensitivity {_ci(t.sensitivity)}, specificity {_ci(t.specificity)}"
+        for t in perf.at_thresholds
+    )
 
 
 def _number(value: float | None) -> str:
@@ -402,6 +411,17 @@ def fine_tune_command(
         ),
     ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the release JSON.")] = False,
+    policy: Annotated[
+        Path | None,
+        typer.Option(
+            "--policy",
+            help=(
+                "The site's disclosure policy: pass the release through the control the "
+                "disclosure gate applies to fine-tuning (operation allowed, minimum cell "
+                "size) and show what the policy lets leave."
+            ),
+        ),
+    ] = None,
 ) -> None:
     """Run the protocol's site-local fine-tuning grid and print the release."""
     try:
@@ -429,6 +449,13 @@ def fine_tune_command(
             site=site or table.stem,
             protocol_hash=study.content_hash(),
         )
+        if policy is not None:
+            from site_agent.disclosure.adaptation_control import preview_adaptation
+
+            release, suppressed = preview_adaptation(release, SitePolicy.load(policy))
+            if not as_json:
+                cut = ", ".join(suppressed) if suppressed else "nothing"
+                typer.echo(f"disclosure policy applied: small cells withheld: {cut}")
         if save is not None:
             update = local_update(data, model, study.adaptation)
             initial = get_state(model.model)
@@ -448,9 +475,11 @@ def fine_tune_command(
         f"({release.n_test_positive} disease, {release.n_test_negative} no disease)"
     )
     typer.echo(f"AUC before fine-tuning: {_auc_text(release.before.auc)}")
+    typer.echo(f"  {_at_thresholds(release.before)}")
     for point in release.points:
         typer.echo(
-            f"  {point.n_used:>5} cases, seed {point.seed}: AUC {_auc_text(point.after.auc)}"
+            f"  {point.n_used:>5} cases, seed {point.seed}: AUC {_auc_text(point.after.auc)}; "
+            f"{_at_thresholds(point.after)}"
         )
 
 

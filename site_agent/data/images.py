@@ -261,8 +261,47 @@ def read_image(path: Path | str, *, row: int | None = None) -> FloatImage:
 
 
 def read_images(paths: list[str]) -> list[FloatImage]:
-    """Read every image of a checked manifest (see :func:`read_image`), in row order."""
-    return [read_image(p, row=row) for row, p in enumerate(paths, start=1)]
+    """Read every image of a checked manifest (see :func:`read_image`), in row order.
+
+    Decoded images are kept in a process-local cache (:class:`_DecodedCache`), keyed by the
+    file's path, size and modification time, so a site answering several requests of one
+    study in one process (fine-tuning grid, federated rounds, the in-process engine) decodes
+    each file once. A changed file is read again. The cache never leaves the process.
+    """
+    return [_DECODED.get(p, row) for row, p in enumerate(paths, start=1)]
+
+
+MAX_CACHED_BYTES = 256 * 1024 * 1024
+"""Largest total size of decoded images kept in memory by :func:`read_images`."""
+
+
+class _DecodedCache:
+    """Decoded images by (path, size, mtime); oldest entries dropped beyond the byte cap."""
+
+    def __init__(self, max_bytes: int) -> None:
+        self._max_bytes = max_bytes
+        self._bytes = 0
+        self._items: dict[tuple[str, int, int], FloatImage] = {}
+
+    def get(self, path: str, row: int) -> FloatImage:
+        try:
+            stat = Path(path).stat()
+        except OSError:
+            return read_image(path, row=row)  # raises the row-named error
+        key = (path, stat.st_size, stat.st_mtime_ns)
+        cached = self._items.get(key)
+        if cached is None:
+            cached = read_image(path, row=row)
+            cached.setflags(write=False)
+            self._items[key] = cached
+            self._bytes += cached.nbytes
+            while self._bytes > self._max_bytes and self._items:
+                oldest = next(iter(self._items))
+                self._bytes -= self._items.pop(oldest).nbytes
+        return cached
+
+
+_DECODED = _DecodedCache(MAX_CACHED_BYTES)
 
 
 @contextmanager

@@ -6,7 +6,9 @@ whose test-set totals are small and suppresses small confusion cells with their 
 the same class (they are marked censored, never 0, and the sensitivity and specificity that
 rest on them become the hull over the censored range). The gate
 (:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on every ``fine_tune`` reply
-before the release leaves.
+before the release leaves. :func:`preview_adaptation` is what ``sitepool site fine-tune
+--policy`` shows: the same control, after the two policy checks the gate makes on a
+``fine_tune`` release (operation allowed, no noise on counts asked).
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from site_agent.contract.adaptation_release import (
     Performance,
     ThresholdPerformance,
 )
+from site_agent.contract.protocol import Operation
 from site_agent.contract.release import EstimateRecord
 from site_agent.disclosure.policy import (
     SitePolicy,
@@ -56,6 +59,28 @@ def control_adaptation(
     )
     out = release.model_copy(update={"before": before, "points": points})
     return AdaptationRelease.model_validate(out.model_dump()), tuple(suppressed)
+
+
+def preview_adaptation(
+    release: AdaptationRelease, policy: SitePolicy
+) -> tuple[AdaptationRelease, tuple[str, ...]]:
+    """Return what the gate would let leave of a local fine-tuning release, and what it cut.
+
+    The gate refuses ``fine_tune`` when the policy does not allow the operation, and when
+    the policy adds noise to counts (no differential privacy covers these metrics); then it
+    applies :func:`control_adaptation`. Approval of the protocol is checked by the gate on a
+    live request and is not part of a preview.
+
+    Raises
+    ------
+    DisclosureRefused
+        With the reason the gate would give.
+    """
+    if Operation.FINE_TUNE not in policy.allowed_operations:
+        raise refusal(RefusalCode.OPERATION_NOT_ALLOWED, Operation.FINE_TUNE.value)
+    if policy.privacy.enabled:
+        raise refusal(RefusalCode.NOT_COVERED_BY_PRIVACY, Operation.FINE_TUNE.value)
+    return control_adaptation(release, policy)
 
 
 def _ok(value: int, min_cell: int) -> bool:

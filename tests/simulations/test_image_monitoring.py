@@ -1,29 +1,39 @@
 """Drift monitoring on image-derived score distributions (invented phantom sites).
 
-The drifting site's scanner change (blur, resolution loss, noise from 60% of its year on)
-is injected by the test's scenario, so the expected direction is known by construction:
-its later windows must show lower AUC than its baseline windows and an alarm on the
-score distribution. Invented images of invented hospitals.
+``sitepool rehearse-drift --images`` runs the image monitoring rehearsal: Riverside's
+scanner changes (blur, resolution loss, noise) from 3 July (61% of its year), injected by the
+scenario, so the expected answer is known by construction: alarms at Riverside from the
+first changed window, and none at the three sites whose acquisition does not change
+(PSI and binned KS with the monitoring thresholds as they are). Invented images of
+invented hospitals.
 """
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pytest
+from typer.testing import CliRunner
 
-from simulations.image_monitoring import monitor_images
+from simulations.cli import app
+from site_agent.notices import RESEARCH_NOTICE
+
+DRIFTING = "Riverside Infirmary"
+STABLE = ("Northgate General", "Lowmoor Community Hospital", "Kestrel Valley Clinic")
 
 
 @pytest.mark.slow
-def test_scanner_change_at_one_site_shows_in_its_windows(tmp_path: Path) -> None:
-    """Riverside's post-change window has a lower AUC and a score-distribution alarm."""
-    result = monitor_images(tmp_path)
+def test_only_the_site_that_changes_scanner_alarms(tmp_path: Path) -> None:
+    """Riverside alarms on its score distribution from window 4; stable sites stay quiet."""
+    result = CliRunner().invoke(app, ["rehearse-drift", "--images", "--out", str(tmp_path)])
 
-    site = next(s for s in result.findings.sites if s.site == result.drifting_site)
-    baseline = [w.auc for w in site.windows if w.baseline and w.auc is not None]
-    last = site.windows[-1]
-    alarms = [a for a in result.findings.alarms if a.site == result.drifting_site]
-    assert baseline and last.auc is not None
-    assert last.auc < min(baseline) - 0.2
-    assert any(a.metric == "score_distribution" and a.window_number >= 3 for a in alarms)
+    assert result.exit_code == 0, result.output
+    findings = json.loads((tmp_path / "drift.json").read_text())
+    alarmed = {a["site"] for a in findings["alarms"]}
+    assert alarmed == {DRIFTING}
+    distribution = [a for a in findings["alarms"] if a["metric"] == "score_distribution"]
+    assert distribution and min(a["window_number"] for a in distribution) == 4
+    page = (tmp_path / "drift-report.html").read_text()
+    assert f"Injected: {DRIFTING} changes scanner from window 4" in page
+    assert " ".join(result.output.split()).endswith(" ".join(RESEARCH_NOTICE.split()))

@@ -35,3 +35,31 @@ def test_image_rehearsal_writes_the_study_report_with_vendor_subgroups(tmp_path:
     for slug in ("northgate", "riverside", "lowmoor"):
         ledger = (tmp_path / "site-data" / slug / "ledger.jsonl").read_text().splitlines()
         assert any('"released"' in line for line in ledger)
+
+
+@pytest.mark.slow
+def test_default_image_scenario_is_imperfect_and_shifted_with_unsuppressed_cells(
+    tmp_path: Path,
+) -> None:
+    """Development AUC below 1; each external site 0.02-0.15 lower; no 0.5 cell suppressed.
+
+    The bounds are the scenario's design (documented in ``default_image_scenario``), checked
+    on its own seed; the AUCs are the study's DeLong estimates.
+    """
+    output = rehearse_images(tmp_path, adapt=False)
+
+    rows = json.loads(output.results_path.read_text())["metrics"]
+    auc = {
+        r["site"]: r["estimate"]
+        for r in rows
+        if r["metric"] == "auc" and r["method"] == "delong" and r["subgroup"] is None
+    }
+    auc.pop("pooled", None)
+    development = auc.pop("Northgate General")
+    assert 0.85 <= development < 0.99
+    for site, value in auc.items():
+        assert 0.02 <= development - value <= 0.15, site
+    cells = (tmp_path / "two_by_two.csv").read_text().splitlines()[1:]
+    for line in cells:
+        tp, fp, fn, tn = (int(v) for v in line.split(",")[2:6])
+        assert min(tp, fp, fn, tn) >= 5, line

@@ -16,7 +16,7 @@ from skimage import filters
 
 from simulations.image_shifts import ImageShift, apply_shift
 from simulations.medmnist import load_medmnist
-from simulations.phantoms import phantom_set
+from simulations.phantoms import DEFAULT_SIZE, phantom_set
 from site_agent.exceptions import InputError
 
 
@@ -26,7 +26,7 @@ def test_phantoms_are_reproducible_and_have_both_classes() -> None:
 
     np.testing.assert_array_equal(first.images, again.images)
     assert set(first.labels.tolist()) == {0, 1}
-    assert first.images.shape == (30, 48, 48)
+    assert first.images.shape == (30, DEFAULT_SIZE, DEFAULT_SIZE)
 
 
 def test_phantom_classes_differ_in_texture_not_brightness() -> None:
