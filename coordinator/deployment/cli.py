@@ -170,6 +170,21 @@ def run_command(
     bundle: Annotated[
         Path | None, typer.Option("--bundle", help="Model bundle (omit if sites bring scores).")
     ] = None,
+    release_files: Annotated[
+        Path | None,
+        typer.Option(
+            "--release-files",
+            help="Folder of signed release files from sites that cannot connect; pooled "
+            "with the connected sites and counted towards the quorum.",
+        ),
+    ] = None,
+    file_keys: Annotated[
+        Path | None,
+        typer.Option(
+            "--file-site-keys",
+            help="Public keys of the file-based sites, <site>.pub each (with --release-files).",
+        ),
+    ] = None,
     wait: Annotated[
         float, typer.Option("--wait", help="Seconds to wait for admitted sites to connect.")
     ] = DEFAULT_NODE_WAIT_S,
@@ -192,6 +207,8 @@ def run_command(
             protocol,
             out,
             bundle_path=bundle,
+            release_files=release_files,
+            release_keys=file_keys,
             timeout_s=timeout,
             node_wait_s=wait,
             progress=progress,

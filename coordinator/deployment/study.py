@@ -9,6 +9,11 @@ ServerApps never ask the sites at once.
 
 When the run's results arrive, the study is pooled and reported exactly as a rehearsal
 is: ``results.json``, the CSV exports and ``report.html`` in the output directory.
+
+A mixed study adds sites that cannot connect: a folder of their signed release files and
+a folder of their public keys (``<site>.pub``) are handed to the ServerApp, which adds each
+round's checked files to the releases gathered over Flower before the quorum check
+(:mod:`coordinator.pooling.release_files`); the report lists both kinds of site alike.
 """
 
 from __future__ import annotations
@@ -21,6 +26,7 @@ from pathlib import Path
 from coordinator.deployment.defaults import DEFAULT_NODE_WAIT_S, DEFAULT_STUDY_TIMEOUT_S
 from coordinator.deployment.hub import CONNECTION, HubState
 from coordinator.pooling.assemble import build_results
+from coordinator.pooling.release_files import file_sites, read_release_folder
 from coordinator.pooling.sites import SiteInfo
 from coordinator.pooling.study_results import StudyResults
 from coordinator.report.exports import write_exports
@@ -40,6 +46,11 @@ _DEPLOYMENT_NOTE = (
     "server and released only what its disclosure policy allowed."
 )
 
+_FILES_NOTE = (
+    "Sites without a connection answered by signed release files; each file's signature, "
+    "site key and protocol hash were checked before its release was pooled."
+)
+
 
 @dataclass(frozen=True, slots=True)
 class StudyFiles:
@@ -57,6 +68,8 @@ def run_deployed_study(
     out: Path,
     *,
     bundle_path: Path | None = None,
+    release_files: Path | None = None,
+    release_keys: Path | None = None,
     timeout_s: float = DEFAULT_STUDY_TIMEOUT_S,
     node_wait_s: float = DEFAULT_NODE_WAIT_S,
     progress: Callable[[str], None] | None = None,
@@ -73,6 +86,10 @@ def run_deployed_study(
         Directory for results.json, the CSV exports and report.html.
     bundle_path
         The model bundle file, or None when every site brings its own scores.
+    release_files
+        A folder of signed release files of sites that cannot connect, or None.
+    release_keys
+        The file-based sites' public keys, ``<site>.pub`` each (needed with release_files).
     timeout_s
         Longest wait for the whole run.
     node_wait_s
@@ -89,6 +106,11 @@ def run_deployed_study(
     """
     say = progress or (lambda _: None)
     protocol = StudyProtocol.load(protocol_path)
+    if (release_files is None) != (release_keys is None):
+        raise InputError("give the release files' folder and their sites' keys together")
+    for folder in (release_files, release_keys):
+        if folder is not None and not Path(folder).is_dir():
+            raise InputError(f"{folder} is not a folder")
     sites = state.sites()
     if not sites:
         raise InputError("no site is admitted: admit the sites' public keys first")
@@ -105,6 +127,8 @@ def run_deployed_study(
         node_wait_s=node_wait_s,
         state_path=state.study_state,
         site_names=tuple(site.name for site in sites),
+        release_files=None if release_files is None else Path(release_files).resolve(),
+        release_keys=None if release_keys is None else Path(release_keys).resolve(),
     )
     config.results_path.unlink(missing_ok=True)
     env = state.env()
@@ -128,13 +152,19 @@ def run_deployed_study(
     (state.root / _ACTIVE_RUN_FILE).unlink(missing_ok=True)
     outcome = RunRecord.read(config.results_path).unwrap()
     say(f"run {run_id} finished: pooling the releases and writing the report")
-    results = build_results(
-        protocol,
-        outcome.rounds[-1],
-        engine=ENGINE,
-        sites={site.name: SiteInfo() for site in sites},
-        notes=[_DEPLOYMENT_NOTE],
-    )
+    invited = {site.name: SiteInfo() for site in sites}
+    notes = [_DEPLOYMENT_NOTE]
+    if config.release_files is not None and config.release_keys is not None:
+        files = read_release_folder(
+            config.release_files,
+            config.release_keys,
+            protocol_hash=protocol.content_hash(),
+            round_number=protocol.rounds,
+            skip_other_rounds=True,
+        )
+        invited |= file_sites(files)
+        notes.append(_FILES_NOTE)
+    results = build_results(protocol, outcome.rounds[-1], engine=ENGINE, sites=invited, notes=notes)
     results_path = out / RESULTS_FILE
     results.write_json(results_path)
     exports = tuple(write_exports(results, out))
