@@ -132,12 +132,7 @@ def run_deployed_study(
     )
     config.results_path.unlink(missing_ok=True)
     env = state.env()
-    _stop_previous_run(state, env, protocol.content_hash(), say)
-    app_dir = write_app(state.root / "app", config)
-    run_id = submit_run(app_dir, CONNECTION, env, state.tmp)
-    (state.root / _ACTIVE_RUN_FILE).write_text(
-        json.dumps({"run_id": run_id, "protocol_hash": protocol.content_hash()})
-    )
+    run_id = submit_hub_run(state, config, protocol.content_hash(), say)
     say(f"study {protocol.study_id}: run {run_id} submitted to {len(sites)} admitted sites")
 
     def stored() -> str:
@@ -149,7 +144,7 @@ def run_deployed_study(
         return ", ".join(f"round {n}: {c} releases" for n, c in enumerate(counts, start=1))
 
     wait_for_results(config.results_path, run_id, CONNECTION, env, timeout_s, say, status=stored)
-    (state.root / _ACTIVE_RUN_FILE).unlink(missing_ok=True)
+    finish_hub_run(state)
     outcome = RunRecord.read(config.results_path).unwrap()
     say(f"run {run_id} finished: pooling the releases and writing the report")
     invited = {site.name: SiteInfo() for site in sites}
@@ -170,6 +165,30 @@ def run_deployed_study(
     exports = tuple(write_exports(results, out))
     report_path = render_report(results, out / REPORT_FILE)
     return StudyFiles(results, results_path, report_path, exports)
+
+
+def submit_hub_run(
+    state: HubState, config: StudyRunConfig, protocol_hash: str, say: Callable[[str], None]
+) -> int:
+    """Submit a run of the ServerApp with ``config`` to the hub; return its run id.
+
+    A run of the same protocol left active by a coordinator that was killed is stopped
+    first, so that two ServerApps never ask the sites at once; the new run is remembered
+    as active until :func:`finish_hub_run`.
+    """
+    env = state.env()
+    _stop_previous_run(state, env, protocol_hash, say)
+    app_dir = write_app(state.root / "app", config)
+    run_id = submit_run(app_dir, CONNECTION, env, state.tmp)
+    (state.root / _ACTIVE_RUN_FILE).write_text(
+        json.dumps({"run_id": run_id, "protocol_hash": protocol_hash})
+    )
+    return run_id
+
+
+def finish_hub_run(state: HubState) -> None:
+    """Forget the active run once its results are in."""
+    (state.root / _ACTIVE_RUN_FILE).unlink(missing_ok=True)
 
 
 def _stop_previous_run(

@@ -21,6 +21,7 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator, Sequence
+from datetime import date
 from pathlib import Path
 
 import numpy as np
@@ -29,13 +30,20 @@ from pydantic import BaseModel
 
 from coordinator.deployment.certificates import make_certificates
 from coordinator.deployment.hub import CONNECTION, HubState, admit_site, list_sites
+from coordinator.monitoring.results_store import SqliteResultsStore
 from coordinator.pooling.assemble import SiteInfo, build_results
 from coordinator.pooling.study_results import StudyResults
-from coordinator.runs.engines import run_study
+from coordinator.runs.engines import run_monitoring, run_study
 from coordinator.runs.loopback import submit_run, write_app
 from coordinator.runs.server_app import RunRecord, StudyRunConfig
 from coordinator.runs.study_state import SqliteStudyState
-from site_agent.contract.protocol import EvaluationPlan, StudyProtocol, uniform_edges
+from site_agent.contract.protocol import (
+    EvaluationPlan,
+    MonitoringPlan,
+    Operation,
+    StudyProtocol,
+    uniform_edges,
+)
 from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger, verify_ledger
@@ -50,19 +58,26 @@ from site_agent.service import SiteSettings
 pytestmark = pytest.mark.loopback
 
 SITES = ("Northgate", "Riverside", "Lowmoor")
-POLICY = SitePolicy(allowed_subgroup_attributes=("scanner_vendor",))
+POLICY = SitePolicy(
+    allowed_operations=(Operation.EVALUATE, Operation.MONITOR),
+    allowed_subgroup_attributes=("scanner_vendor",),
+)
 SITEPOOL = str(Path(sys.executable).parent / "sitepool")
 WAIT_S = 90.0
 
 
 def _table(path: Path, seed: int, n_cases: int = 60) -> Path:
-    """Write an invented scored predictions table (two cases per patient)."""
+    """Write an invented scored predictions table (two cases per patient, three months)."""
     rng = np.random.default_rng(seed)
     label = (rng.random(n_cases) < 0.4).astype(int)
     score = np.clip(rng.beta(2 + 3 * label, 5 - 3 * label), 0.0, 1.0)
     vendor = rng.choice(["vendor-a", "vendor-b"], size=n_cases)
-    rows = ["case_id,patient_id,label,score,scanner_vendor"]
-    rows += [f"c{i},p{i // 2},{label[i]},{score[i]:.6f},{vendor[i]}" for i in range(n_cases)]
+    day = rng.integers(1, 28, size=n_cases)
+    rows = ["case_id,patient_id,label,score,scanner_vendor,acquired_on"]
+    rows += [
+        f"c{i},p{i // 2},{label[i]},{score[i]:.6f},{vendor[i]},2031-{1 + i % 3:02d}-{day[i]:02d}"
+        for i in range(n_cases)
+    ]
     path.write_text("\n".join(rows) + "\n")
     return path
 
@@ -369,6 +384,8 @@ def test_a_run_whose_app_bundle_carries_code_is_refused_at_connected_sites(
         results_path=tmp_path / "outcome.json",
         expected_sites=len(SITES),
         node_wait_s=5.0,
+        state_path=tmp_path / "study-state.sqlite",
+        site_names=SITES,
     )
     app_dir = write_app(tmp_path / "app", config)
     (app_dir / "marker_app.py").write_text(
@@ -389,7 +406,8 @@ def test_a_run_whose_app_bundle_carries_code_is_refused_at_connected_sites(
 
     record = RunRecord.read(config.results_path)
     assert record.outcome is None  # every site refused: below quorum
-    assert "app_bundle_carries_code" in (record.error or "")
+    for name in SITES:  # the coordinator is told who refused and why
+        assert f"{name}: app_bundle_carries_code" in (record.error or "")
     for settings in consortium.settings.values():
         assert settings.ledger_path is not None
         refusals = [
@@ -470,6 +488,75 @@ def test_late_declining_and_file_based_sites_with_quorum_held_by_a_file(
     for name in ("Riverside", "Lowmoor", "Kestrel Valley"):
         assert name in report
     assert "Riverside: silent" in stdout and "Lowmoor: declined" in stdout
+
+
+def test_monitoring_windows_over_connected_sites_fill_the_results_store(
+    consortium: Consortium, tmp_path: Path
+) -> None:
+    """``coordinator monitor`` stores each window; ``sitepool monitor`` reads the store.
+
+    Reference: the in-process engine on the same site files (fresh ledgers, so it computes
+    rather than repeats the sites' answers) stores the same window releases.
+    """
+    protocol = StudyProtocol(
+        study_id="nodule-watch-deployed-2031",
+        title="Invented monitoring study over connected sites",
+        evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(5)),
+        operations=(Operation.MONITOR,),
+        rounds=3,
+        quorum=1,
+        reply_timeout_s=60.0,
+        monitoring=MonitoringPlan(
+            first_window_start=date(2031, 1, 1), windows=3, window_months=1, baseline_windows=1
+        ),
+    )
+    path = consortium.approve_everywhere(protocol)
+    store = tmp_path / "deployed-store.sqlite"
+    command = [SITEPOOL, "coordinator", "monitor", "--state", str(consortium.hub.root)]
+    command += ["--protocol", str(path), "--store", str(store), "--as-of", "2033-01-01"]
+    done = subprocess.run(
+        [*command, "--wait", "30", "--timeout", "150"],
+        env=consortium.hub.env(),
+        capture_output=True,
+        text=True,
+        timeout=200,
+        check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    assert "window 3 (2031-03-01 to 2031-04-01): 3 stored" in done.stdout
+    fresh = [
+        s.model_copy(update={"ledger_path": tmp_path / f"{s.site}-fresh.jsonl"})
+        for s in consortium.settings.values()
+    ]
+    run_monitoring(
+        protocol,
+        None,
+        fresh,
+        store_path=tmp_path / "reference-store.sqlite",
+        engine="inprocess",
+        workdir=tmp_path / "reference",
+        as_of=date(2033, 1, 1),
+    )
+    study = protocol.study_id
+    with (
+        SqliteResultsStore(store) as deployed,
+        SqliteResultsStore(tmp_path / "reference-store.sqlite") as reference,
+    ):
+        got = [(w.site, w.window_start, w.release_json) for w in deployed.windows(study)]
+        want = [(w.site, w.window_start, w.release_json) for w in reference.windows(study)]
+    assert len(got) == 9
+    assert got == want
+
+    drift = [SITEPOOL, "monitor", "--store", str(store), "--study", study]
+    report = subprocess.run(
+        [*drift, "--out", str(tmp_path / "drift"), "--baseline-windows", "1"],
+        capture_output=True,
+        text=True,
+        timeout=200,
+        check=False,
+    )
+    assert report.returncode == 0, report.stderr
+    assert (tmp_path / "drift" / "drift-report.html").exists()
 
 
 def test_the_coordinator_killed_mid_study_resumes_with_identical_results(
