@@ -544,7 +544,7 @@ def test_monitoring_windows_over_connected_sites_fill_the_results_store(
     ):
         got = [(w.site, w.window_start, w.release_json) for w in deployed.windows(study)]
         want = [(w.site, w.window_start, w.release_json) for w in reference.windows(study)]
-    assert len(got) == 9
+    assert {site for site, _, _ in got} == set(SITES)  # a small window may be declined
     assert got == want
 
     drift = [SITEPOOL, "monitor", "--store", str(store), "--study", study]
@@ -631,7 +631,7 @@ def test_a_site_killed_mid_round_is_named_missing_while_quorum_holds(
 ) -> None:
     """One site dies after the run is submitted: the study goes on and the report names it."""
     consortium.wait_online(SITES)
-    protocol = _protocol("silent-site-nodule-2031", reply_timeout_s=20.0)
+    protocol = _protocol("silent-site-nodule-2031", reply_timeout_s=15.0)
     path = consortium.approve_everywhere(protocol)
     run = consortium.run(path, tmp_path / "one-down")
     time.sleep(1.0)
