@@ -56,6 +56,14 @@ def connect_command(
         Path | None,
         typer.Option("--image-config", help="The site's image configuration (JSON or TOML)."),
     ] = None,
+    approved_bundles: Annotated[
+        Path | None,
+        typer.Option(
+            "--approved-bundles",
+            help="App-bundle hashes this site approved (sitepool site approve-bundle); "
+            "without it every bundle carrying code is refused.",
+        ),
+    ] = None,
 ) -> None:
     """Connect out to the hub and answer its requests until Ctrl-C."""
     from site_agent.connection import SiteConnection, connect_site
@@ -73,7 +81,12 @@ def connect_command(
         typer.echo(f"error: invalid site settings: {exc.__class__.__name__}", err=True)
         raise typer.Exit(EXIT_ERROR) from None
     connection = SiteConnection(
-        hub=hub, ca_cert=ca, private_key=key, settings=settings, state=state
+        hub=hub,
+        ca_cert=ca,
+        private_key=key,
+        settings=settings,
+        state=state,
+        approved_bundles=approved_bundles,
     )
 
     def ready(log: str) -> None:
@@ -97,7 +110,8 @@ def add_connection_commands(app: typer.Typer) -> None:
         "connect",
         help=(
             "Connect to a coordinator's hub (outbound only, TLS, site key) and answer "
-            "its study requests with this site's data until Ctrl-C."
+            "its study requests with this site's data until Ctrl-C. Runs whose app bundle "
+            "carries code are refused and ledgered; only the installed site agent answers."
         ),
         epilog=RESEARCH_NOTICE,
     )(connect_command)

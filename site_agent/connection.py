@@ -4,12 +4,16 @@
 consortium's CA certificate, so that a wrong CA, an expired or mismatched server
 certificate or an unreachable hub is named in one line before anything else starts.
 It then starts Flower's ``flower-supernode`` with TLS and the site's authentication key
-(:mod:`site_agent.keys`), running this installed site agent's own ClientApp
-(``site_agent.client_app:app``) with the site's data, policy and ledger in its node
-configuration. The SuperNode only connects out to the hub; its local Runtime API for the
-site's own app processes listens on 127.0.0.1.
+(:mod:`site_agent.keys`) in ``--isolation process`` mode, with the site's data, policy and
+ledger in its node configuration, and beside it the site's own task runner
+(:mod:`site_agent.task_runner`): in that mode the SuperNode never installs nor imports a
+run's app bundle; the runner checks each bundle (:mod:`site_agent.app_bundle`), ledgers a
+refusal, and answers accepted runs with this installed site agent's ClientApp. The
+SuperNode only connects out to the hub; its local Runtime API, which the runner dials,
+listens on 127.0.0.1.
 
-The site serves until SIGINT (Ctrl-C) or SIGTERM, then stops every process it started.
+The site serves until SIGINT (Ctrl-C) or SIGTERM, then stops every process it started;
+if either the SuperNode or the runner ends, the other is stopped too.
 A key the coordinator has not admitted ends the SuperNode at once: that is reported as
 one line naming the key's fingerprint, never the key.
 
@@ -29,6 +33,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from types import FrameType
 
+from site_agent.app_bundle import load_approved_bundles
 from site_agent.exceptions import DeploymentError, InputError
 from site_agent.flower_processes import (
     LOOPBACK,
@@ -36,6 +41,7 @@ from site_agent.flower_processes import (
     flower_tool,
     free_port,
     process_groups,
+    site_runner_command,
 )
 from site_agent.keys import check_private_key, private_fingerprint
 from site_agent.service import SiteSettings
@@ -55,6 +61,8 @@ class SiteConnection:
     private_key: Path
     settings: SiteSettings
     state: Path
+    approved_bundles: Path | None = None
+    """The site's approved app-bundle hashes (JSON); None approves no bundle with code."""
 
 
 BEFORE_SERVE: list[Callable[[SiteConnection], None]] = []
@@ -123,11 +131,12 @@ def connect_site(
     Raises
     ------
     InputError
-        If the key or the site settings are invalid.
+        If the key, the approved-bundles file or the site settings are invalid.
     DeploymentError
         If the TLS check fails, the hub refuses the key, or the SuperNode dies.
     """
     check_private_key(connection.private_key)
+    load_approved_bundles(connection.approved_bundles)  # a damaged file is named before start
     check_hub(connection.hub, connection.ca_cert)
     for check in BEFORE_SERVE:
         check(connection)
@@ -144,6 +153,8 @@ def connect_site(
         )
     )
     log = logs / "supernode.log"
+    runner_log = logs / "site-runner.log"
+    runtime_address = f"{LOOPBACK}:{free_port()}"
     stopping: list[int] = []
 
     def stop(signum: int, _frame: FrameType | None) -> None:
@@ -165,11 +176,19 @@ def connect_site(
                     "--host",
                     LOOPBACK,
                     "--port",
-                    str(free_port()),
+                    runtime_address.rsplit(":", 1)[1],
                     "--node-config",
                     str(node_config),
+                    # No app bundle is installed or imported: the site's runner takes the tasks.
+                    "--isolation",
+                    "process",
                 ],
                 log,
+            )
+            runner = processes.start(
+                "site-runner",
+                site_runner_command(runtime_address, connection.approved_bundles),
+                runner_log,
             )
             if ready is not None:
                 ready(log.as_posix())
@@ -178,6 +197,11 @@ def connect_site(
                 if node.poll() is not None:
                     raise DeploymentError(
                         _exit_reason(log, node.returncode, connection.private_key)
+                    )
+                if runner.poll() is not None:
+                    raise DeploymentError(
+                        f"the site's task runner stopped (exit code {runner.returncode}); "
+                        f"see {runner_log}"
                     )
                 if stop_after_s is not None and time.monotonic() - started > stop_after_s:
                     break

@@ -30,19 +30,25 @@ _STOP_GRACE_S = 5.0
 _LOG_TAIL_LINES = 25
 
 
-def site_runner_command(runtime_api_address: str) -> list[str]:
+def site_runner_command(
+    runtime_api_address: str, approved_bundles: Path | None = None
+) -> list[str]:
     """Return the command that starts a site's task runner (:mod:`site_agent.task_runner`).
 
     The runner takes the SuperNode's tasks in place of Flower's own ClientApp process,
-    so that no code from a run's app bundle is loaded at the site.
+    so that no code from a run's app bundle is loaded at the site. ``approved_bundles``
+    is the site's approved-bundles file (None: no bundle with code is approved).
     """
-    return [
+    command = [
         sys.executable,
         "-m",
         "site_agent.task_runner",
         "--runtime-api-address",
         runtime_api_address,
     ]
+    if approved_bundles is not None:
+        command += ["--approved-bundles", str(Path(approved_bundles).resolve())]
+    return command
 
 
 def free_port() -> int:

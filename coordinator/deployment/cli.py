@@ -2,8 +2,9 @@
 
 Commands: ``certs`` (a throwaway CA and server certificate), ``start`` (serve the hub
 until Ctrl-C), ``admit``, ``sites``, ``remove`` (site keys), ``run`` (a study from a
-protocol file, resumable). Every failure is one line ``error: ...`` on stderr with exit
-code 2; no key material is ever printed.
+protocol file, resumable), ``monitor`` (monitoring windows into a results store).
+Every failure is one line ``error: ...`` on stderr with exit code 2; no key material is
+ever printed.
 """
 
 from __future__ import annotations
@@ -170,6 +171,21 @@ def run_command(
     bundle: Annotated[
         Path | None, typer.Option("--bundle", help="Model bundle (omit if sites bring scores).")
     ] = None,
+    release_files: Annotated[
+        Path | None,
+        typer.Option(
+            "--release-files",
+            help="Folder of signed release files from sites that cannot connect; pooled "
+            "with the connected sites and counted towards the quorum.",
+        ),
+    ] = None,
+    file_keys: Annotated[
+        Path | None,
+        typer.Option(
+            "--file-site-keys",
+            help="Public keys of the file-based sites, <site>.pub each (with --release-files).",
+        ),
+    ] = None,
     wait: Annotated[
         float, typer.Option("--wait", help="Seconds to wait for admitted sites to connect.")
     ] = DEFAULT_NODE_WAIT_S,
@@ -192,6 +208,8 @@ def run_command(
             protocol,
             out,
             bundle_path=bundle,
+            release_files=release_files,
+            release_keys=file_keys,
             timeout_s=timeout,
             node_wait_s=wait,
             progress=progress,
@@ -202,4 +220,76 @@ def run_command(
         typer.echo(f"  {row.site}: {row.status}" + (f" ({row.reason})" if row.reason else ""))
     typer.echo(f"results: {files.results_path}")
     typer.echo(f"report:  {files.report_path}  (open it in a browser)")
+    typer.echo(RESEARCH_NOTICE)
+
+
+@coordinator_app.command(
+    "monitor",
+    help=(
+        "Run a protocol's monitoring windows at the connected sites into a results store "
+        "(windows already final there are skipped); then read it with "
+        f"sitepool monitor --store. {RESEARCH_NOTICE}"
+    ),
+)
+def monitor_command(
+    state: Annotated[Path, _STATE],
+    protocol: Annotated[
+        Path, typer.Option("--protocol", help="Protocol with a monitoring plan (JSON).")
+    ],
+    store: Annotated[Path, typer.Option("--store", help="SQLite results store to fill.")],
+    bundle: Annotated[
+        Path | None, typer.Option("--bundle", help="Model bundle (omit if sites bring scores).")
+    ] = None,
+    as_of: Annotated[
+        str | None,
+        typer.Option("--as-of", help="Day taken as today for the label horizon (YYYY-MM-DD)."),
+    ] = None,
+    wait: Annotated[
+        float, typer.Option("--wait", help="Seconds to wait for admitted sites to connect.")
+    ] = DEFAULT_NODE_WAIT_S,
+    timeout: Annotated[
+        float, typer.Option("--timeout", help="Longest wait for the whole run, seconds.")
+    ] = DEFAULT_STUDY_TIMEOUT_S,
+) -> None:
+    """Fetch the monitoring windows and say what was stored."""
+    from datetime import date
+
+    from coordinator.deployment.hub import HubState
+    from coordinator.deployment.monitoring import run_deployed_monitoring
+    from site_agent.exceptions import InputError
+
+    started = time.perf_counter()
+
+    def progress(line: str) -> None:
+        print(f"{time.perf_counter() - started:6.1f}s {line}", file=sys.stderr, flush=True)
+
+    try:
+        try:
+            today = None if as_of is None else date.fromisoformat(as_of)
+        except ValueError as exc:
+            raise InputError(f"--as-of must be a date YYYY-MM-DD, got {as_of!r}") from exc
+        outcome = run_deployed_monitoring(
+            HubState(state),
+            protocol,
+            store,
+            bundle_path=bundle,
+            as_of=today,
+            timeout_s=timeout,
+            node_wait_s=wait,
+            progress=progress,
+        )
+    except SitepoolError as exc:
+        _fail(exc)
+    for window in outcome.windows:
+        missing = [d.site for d in window.declines] + [f.site or "?" for f in window.faults]
+        typer.echo(
+            f"  window {window.window_number} ({window.window_start} to {window.window_end}): "
+            + ("final, skipped" if window.skipped else f"{len(window.stored)} stored")
+            + (f"; {len(window.revised)} revised" if window.revised else "")
+            + (f"; no release from {', '.join(missing)}" if missing else "")
+        )
+    typer.echo(
+        f"results store: {Path(store).resolve()} (study {outcome.study_id}); "
+        f"report with: sitepool monitor --store {store} --study {outcome.study_id} --out DIR"
+    )
     typer.echo(RESEARCH_NOTICE)

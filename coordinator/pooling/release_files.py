@@ -15,6 +15,7 @@ over the network and by file is counted once, from the network; its file is refu
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -67,14 +68,19 @@ def read_release_folder(
     *,
     protocol_hash: str,
     round_number: int = 1,
+    skip_other_rounds: bool = False,
 ) -> FileReleases:
     """Check every ``*.signed-release.json`` file in ``folder`` (not its subfolders).
 
     Two accepted files from the same site: the first by file name is kept, the rest refused.
+    With ``skip_other_rounds`` (a study of several rounds sharing one folder), a file whose
+    ``round_number`` field names another round is left for that round, not refused.
     """
     accepted: dict[str, SignedRelease] = {}
     refused: list[RefusedFile] = []
     for path in sorted(Path(folder).glob(f"*{SIGNED_RELEASE_SUFFIX}")):
+        if skip_other_rounds and _names_other_round(path, round_number):
+            continue
         try:
             envelope = verify_release_file(
                 path, admitted_keys, protocol_hash=protocol_hash, round_number=round_number
@@ -87,6 +93,16 @@ def read_release_folder(
             continue
         accepted[envelope.site] = envelope
     return FileReleases(accepted=tuple(accepted.values()), refused=tuple(refused))
+
+
+def _names_other_round(path: Path, round_number: int) -> bool:
+    """Whether the file's (unchecked) round field names a round other than ``round_number``."""
+    try:
+        fields = json.loads(path.read_bytes())
+    except (OSError, ValueError):
+        return False  # refused, with its reason, by the full check
+    number = fields.get("round_number") if isinstance(fields, dict) else None
+    return isinstance(number, int) and number != round_number
 
 
 def with_file_releases(outcome: RoundOutcome, files: FileReleases) -> RoundOutcome:

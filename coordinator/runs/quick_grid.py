@@ -18,6 +18,7 @@ import time
 from collections.abc import Iterable
 
 from flwr.app import Message, RecordDict
+from flwr.proto.node_pb2 import NodeInfo
 from flwr.serverapp import Grid
 from flwr.supercore.run import Run
 
@@ -55,6 +56,14 @@ class QuickPollGrid(Grid):
     def get_node_ids(self) -> Iterable[int]:
         """Return the wrapped Grid's connected node ids."""
         return self._inner.get_node_ids()
+
+    def get_nodes(self) -> Iterable[NodeInfo]:
+        """Return the wrapped Grid's connected nodes, with the names the hub admitted them under.
+
+        Without this, Flower's default builds nodes from their ids alone and every name is
+        empty: a resumed study could not tell which site's release it already holds.
+        """
+        return self._inner.get_nodes()
 
     def push_messages(self, messages: Iterable[Message]) -> Iterable[str]:
         """Push through the wrapped Grid."""

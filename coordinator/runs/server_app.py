@@ -10,16 +10,18 @@ study outcome, or the error that stopped the run. Both engines run this same app
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
 from datetime import date
 from pathlib import Path
 
 from flwr.app import Context
 from flwr.serverapp import Grid, ServerApp
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from coordinator.adaptation.fine_tuning import run_fine_tuning
 from coordinator.monitoring.results_store import SqliteResultsStore
 from coordinator.monitoring.rounds import MonitoringOutcome, run_monitoring_rounds
+from coordinator.pooling.release_files import FileReleases, read_release_folder
 from coordinator.runs.quick_grid import QuickPollGrid
 from coordinator.runs.rounds import StudyOutcome, run_study_rounds
 from coordinator.runs.study_state import SqliteStudyState, run_resumable_study_rounds
@@ -35,11 +37,15 @@ STORE_PATH_KEY = "store-path"
 AS_OF_KEY = "as-of"
 STATE_PATH_KEY = "study-state-path"
 SITE_NAMES_KEY = "expected-site-names"
+RELEASE_FILES_KEY = "release-files-dir"
+RELEASE_KEYS_KEY = "release-files-keys-dir"
 """Keys of the run config this app reads; a store path switches the app to monitoring
 (:func:`~coordinator.monitoring.rounds.run_monitoring_rounds`, one round per time window), and
 ``as-of`` (an ISO date) is the day a monitoring run takes as today. A study-state path
 makes a study run resumable (:mod:`coordinator.runs.study_state`); the expected site names
-(comma-separated) are those a deployment admitted, so that absent ones are named."""
+(comma-separated) are those a deployment admitted, so that absent ones are named. A
+release-files folder (with the directory of the file-based sites' public keys) adds the
+signed release files of each round to a resumable study before its quorum check."""
 
 DEFAULT_NODE_WAIT_S = 60.0
 _NODE_POLL_S = 0.5
@@ -67,6 +73,20 @@ class StudyRunConfig(BaseModel):
     site_names: tuple[str, ...] = Field(
         default=(), description="Sites a deployment admitted (named in the report if absent)."
     )
+    release_files: Path | None = Field(
+        default=None, description="Folder of signed release files pooled with the network's."
+    )
+    release_keys: Path | None = Field(
+        default=None, description="Public keys of the file-based sites, <site>.pub each."
+    )
+
+    @model_validator(mode="after")
+    def _files_need_keys(self) -> StudyRunConfig:
+        if (self.release_files is None) != (self.release_keys is None):
+            raise ValueError("release files and their sites' keys go together")
+        if self.release_files is not None and self.state_path is None:
+            raise ValueError("release files are pooled in resumable study runs only")
+        return self
 
     @classmethod
     def from_run_config(cls, run_config: dict[str, bool | int | float | str]) -> StudyRunConfig:
@@ -86,6 +106,8 @@ class StudyRunConfig(BaseModel):
             "store_path": STORE_PATH_KEY,
             "as_of": AS_OF_KEY,
             "state_path": STATE_PATH_KEY,
+            "release_files": RELEASE_FILES_KEY,
+            "release_keys": RELEASE_KEYS_KEY,
         }
         values: dict[str, object] = {
             field: run_config[key]
@@ -117,6 +139,9 @@ class StudyRunConfig(BaseModel):
             config[STATE_PATH_KEY] = str(self.state_path)
         if self.site_names:
             config[SITE_NAMES_KEY] = ",".join(self.site_names)
+        if self.release_files is not None and self.release_keys is not None:
+            config[RELEASE_FILES_KEY] = str(self.release_files)
+            config[RELEASE_KEYS_KEY] = str(self.release_keys)
         return config
 
 
@@ -195,7 +220,12 @@ def run_configured_study(
     else:
         with SqliteStudyState(config.state_path) as state:
             outcome = run_resumable_study_rounds(
-                grid, protocol, bundle, state, expected_sites=config.site_names
+                grid,
+                protocol,
+                bundle,
+                state,
+                expected_sites=config.site_names,
+                file_releases=_file_releases(config, protocol),
             )
     timed["evaluation_rounds"] = time.perf_counter() - started
     if Operation.FINE_TUNE in protocol.operations and bundle is not None:
@@ -214,6 +244,26 @@ def run_configured_monitoring(grid: Grid, config: StudyRunConfig) -> MonitoringO
     _wait_for_nodes(grid, config.expected_sites, config.node_wait_s)
     with SqliteResultsStore(config.store_path) as store:
         return run_monitoring_rounds(grid, protocol, bundle, store, as_of=config.as_of)
+
+
+def _file_releases(
+    config: StudyRunConfig, protocol: StudyProtocol
+) -> Callable[[int], FileReleases] | None:
+    """Return the reader of each round's signed release files, or None without a folder."""
+    folder, keys = config.release_files, config.release_keys
+    if folder is None or keys is None:
+        return None
+
+    def read(number: int) -> FileReleases:
+        return read_release_folder(
+            folder,
+            keys,
+            protocol_hash=protocol.content_hash(),
+            round_number=number,
+            skip_other_rounds=True,
+        )
+
+    return read
 
 
 def _read_bundle(path: Path) -> bytes:

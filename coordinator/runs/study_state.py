@@ -19,6 +19,12 @@ reply that names another site is a fault and nothing of it is stored. Sites the 
 expects (``expected_sites``) that are not connected when a round starts are faults named
 for the site, so the report says which site is missing and why.
 
+Mixed studies: sites that cannot connect answer into signed release files
+(:mod:`coordinator.pooling.release_files`). ``file_releases`` gives, for a round, the
+checked files of that round; their releases are added to the round *before* the quorum
+check, so a connected site and a file-based site count alike, and a refused file is named
+as a fault. They are read afresh at each (re)start, never stored as network releases.
+
 Durability is that of :mod:`coordinator.monitoring.results_store`: write-ahead log,
 ``synchronous=FULL``, one transaction per write.
 """
@@ -26,7 +32,7 @@ Durability is that of :mod:`coordinator.monitoring.results_store`: write-ahead l
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from types import TracebackType
@@ -36,6 +42,7 @@ from flwr.app import Message
 from flwr.serverapp import Grid
 from pydantic import ValidationError
 
+from coordinator.pooling.release_files import FileReleases, with_file_releases
 from coordinator.runs.rounds import (
     NodeFault,
     RoundOutcome,
@@ -176,8 +183,12 @@ def run_resumable_study_rounds(
     state: SqliteStudyState,
     *,
     expected_sites: Sequence[str] = (),
+    file_releases: Callable[[int], FileReleases] | None = None,
 ) -> StudyOutcome:
     """Run ``protocol.rounds`` evaluation rounds, resuming from ``state``.
+
+    ``file_releases``, if given, returns the checked signed release files of a round
+    number; they count towards the round's quorum (see the module docstring).
 
     Raises
     ------
@@ -189,7 +200,8 @@ def run_resumable_study_rounds(
     for number in range(1, protocol.rounds + 1):
         outcome = state.closed_round(protocol.content_hash(), number)
         if outcome is None:
-            outcome = _resumed_round(grid, protocol, bundle, state, number, expected_sites)
+            files = None if file_releases is None else file_releases(number)
+            outcome = _resumed_round(grid, protocol, bundle, state, number, expected_sites, files)
             state.close_round(outcome)
         rounds.append(outcome)
     return StudyOutcome(
@@ -204,6 +216,7 @@ def _resumed_round(
     state: SqliteStudyState,
     number: int,
     expected_sites: Sequence[str],
+    files: FileReleases | None = None,
 ) -> RoundOutcome:
     protocol_hash = protocol.content_hash()
     names = {int(node.node_id): str(node.name) for node in grid.get_nodes()}
@@ -228,9 +241,10 @@ def _resumed_round(
             )
     answered = set(kept) | {d.site for d in fresh.declines} | {f.site for f in faults}
     connected = set(names.values())
+    by_file = set() if files is None else {envelope.site for envelope in files.accepted}
     faults += [
         NodeFault(node_id=0, site=site, reason="not connected when the round started")
-        for site in sorted(set(expected_sites) - connected - answered)
+        for site in sorted(set(expected_sites) - connected - answered - by_file)
     ]
     outcome = RoundOutcome(
         round_number=number,
@@ -242,6 +256,8 @@ def _resumed_round(
         faults=sorted(faults, key=lambda f: (f.site or "", f.node_id)),
         disclosures={site: item.disclosure for site, item in sorted(kept.items())},
     )
+    if files is not None:  # file-based sites count towards the quorum like connected ones
+        outcome = with_file_releases(outcome, files)
     if len(outcome.releases) < protocol.quorum:
         missing = [f"{d.site} declined ({d.reason})" for d in outcome.declines]
         missing += [f"{f.site or f'node {f.node_id}'}: {f.reason}" for f in outcome.faults]

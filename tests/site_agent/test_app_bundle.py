@@ -10,6 +10,7 @@ import hashlib
 import warnings
 from pathlib import Path
 
+import pytest
 from flwr.cli.build import build_fab_from_disk
 
 from site_agent.app_bundle import (
@@ -19,6 +20,11 @@ from site_agent.app_bundle import (
     check_app_bundle,
     load_approved_bundles,
 )
+from site_agent.connection import SiteConnection, connect_site
+from site_agent.exceptions import InputError
+from site_agent.flower_processes import free_port, site_runner_command
+from site_agent.keys import make_site_keys
+from site_agent.service import SiteSettings
 
 _PROJECT = """[build-system]
 requires = ["hatchling"]
@@ -88,3 +94,27 @@ def test_approved_hash_is_accepted_and_a_false_hash_refused(tmp_path: Path) -> N
     assert check_app_bundle(fab, digest, approved).verdict is BundleVerdict.APPROVED
     assert check_app_bundle(fab, "0" * 64, approved).verdict is BundleVerdict.HASH_MISMATCH
     assert check_app_bundle(b"not a zip", None).verdict is BundleVerdict.UNREADABLE
+
+
+def test_connect_names_a_damaged_approved_bundles_file_before_starting(tmp_path: Path) -> None:
+    """``site connect`` checks the approved-bundles file before it dials the hub.
+
+    The hub address is a closed port: reaching the network step would fail differently.
+    """
+    keys = make_site_keys(tmp_path / "keys")
+    damaged = tmp_path / "approved-bundles.json"
+    damaged.write_text('{"approved": 7}')
+    connection = SiteConnection(
+        hub=f"127.0.0.1:{free_port()}",
+        ca_cert=tmp_path / "ca.pem",
+        private_key=keys.private_key,
+        settings=SiteSettings(site="Northgate", data_path=tmp_path / "cases.csv"),
+        state=tmp_path / "state",
+        approved_bundles=damaged,
+    )
+
+    with pytest.raises(InputError, match="approved-bundles file"):
+        connect_site(connection)
+    assert not (tmp_path / "state").exists()  # nothing was started
+    command = site_runner_command("127.0.0.1:1", damaged)
+    assert command[-2:] == ["--approved-bundles", str(damaged.resolve())]

@@ -17,6 +17,15 @@ from coordinator.runs import loopback
 from coordinator.runs.engines import _configured
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.disclosure.ledger import ReleaseLedger, verify_ledger
+from site_agent.flower_processes import (
+    LOOPBACK,
+    flower_environment,
+    flower_tool,
+    free_port,
+    process_groups,
+    site_runner_command,
+    wait_for_port,
+)
 from site_agent.service import SiteSettings
 
 pytestmark = pytest.mark.loopback
@@ -32,32 +41,32 @@ def test_bundle_carrying_a_module_is_refused_and_its_code_never_runs(
     marker = tmp_path / "marker-written-by-foreign-code"
     config = _configured(study_protocol, None, [site], tmp_path / "run", store_path=None)
     layout = loopback._Layout(tmp_path / "run")
-    env = loopback._environment(layout)
-    with loopback._process_groups(env) as processes:
-        link_port = loopback.free_port()
+    env = flower_environment(layout.home, layout.tmp)
+    with process_groups(env) as processes:
+        link_port = free_port()
         processes.start(
             "superlink",
             [
-                loopback._tool("flower-superlink"),
+                flower_tool("flower-superlink"),
                 "--insecure",
                 "--host",
-                loopback.LOOPBACK,
+                LOOPBACK,
                 "--port",
                 str(link_port),
                 "--disable-runtime-dependency-installation",
             ],
             layout.log("superlink"),
         )
-        runtime_port = loopback.free_port()
+        runtime_port = free_port()
         processes.start(
             "supernode",
             [
-                loopback._tool("flower-supernode"),
+                flower_tool("flower-supernode"),
                 "--insecure",
                 "--superlink",
-                f"{loopback.LOOPBACK}:{link_port}",
+                f"{LOOPBACK}:{link_port}",
                 "--host",
-                loopback.LOOPBACK,
+                LOOPBACK,
                 "--port",
                 str(runtime_port),
                 "--node-config",
@@ -69,12 +78,12 @@ def test_bundle_carrying_a_module_is_refused_and_its_code_never_runs(
         )
         processes.start(
             "runner",
-            loopback.site_runner_command(f"{loopback.LOOPBACK}:{runtime_port}"),
+            site_runner_command(f"{LOOPBACK}:{runtime_port}"),
             layout.log("runner"),
         )
-        loopback._wait_for_port(link_port, 30.0, processes)
+        wait_for_port(link_port, 30.0, processes)
         loopback._write_connection(layout, link_port)
-        app_dir = loopback._write_app(layout, config)
+        app_dir = loopback.write_app(layout.app, config)
         (app_dir / "marker_app.py").write_text(
             "from pathlib import Path\nfrom flwr.clientapp import ClientApp\n"
             f"Path({str(marker)!r}).write_text('ran')\napp = ClientApp()\n"
@@ -83,7 +92,9 @@ def test_bundle_carrying_a_module_is_refused_and_its_code_never_runs(
         project.write_text(
             project.read_text().replace('"site_agent.client_app:app"', '"marker_app:app"')
         )
-        loopback._submit(app_dir, env, layout, processes)
+        loopback.submit_run(
+            app_dir, loopback.CONNECTION_NAME, env, layout.root, processes.log_tails
+        )
         assert site.ledger_path is not None
         deadline = time.monotonic() + _WAIT_S
         reasons: list[str | None] = []

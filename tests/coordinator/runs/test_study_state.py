@@ -19,14 +19,19 @@ from flwr.proto.node_pb2 import NodeInfo
 from flwr.serverapp import Grid, ServerApp
 from flwr.supercore.run import Run
 
+from coordinator.pooling.release_files import FILE_NODE_ID, FileReleases, read_release_folder
 from coordinator.runs.inprocess import FIRST_NODE_ID, run_inprocess
 from coordinator.runs.rounds import SiteDisclosure, StudyOutcome
 from coordinator.runs.study_state import SqliteStudyState, run_resumable_study_rounds
 from site_agent import client_app
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.contract.release import SiteRelease
+from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
+from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import ReleaseLedger
 from site_agent.exceptions import DeploymentError
+from site_agent.keys import make_site_keys
+from site_agent.offline_answer import answer_into_file
 from site_agent.service import SiteSettings
 
 
@@ -77,6 +82,7 @@ def _resumable(
     sites: Sequence[SiteSettings],
     state_path: Path,
     expected: Sequence[str] = (),
+    file_releases: Callable[[int], FileReleases] | None = None,
 ) -> StudyOutcome:
     server = ServerApp()
     result: list[StudyOutcome] = []
@@ -87,7 +93,12 @@ def _resumable(
         with SqliteStudyState(state_path) as state:
             result.append(
                 run_resumable_study_rounds(
-                    _NamedGrid(grid, names), protocol, None, state, expected_sites=expected
+                    _NamedGrid(grid, names),
+                    protocol,
+                    None,
+                    state,
+                    expected_sites=expected,
+                    file_releases=file_releases,
                 )
             )
 
@@ -147,3 +158,45 @@ def test_quorum_failure_names_each_missing_site_and_why(
         _resumable(strict, three_sites, tmp_path / "state.sqlite", expected=["Kestrel Valley"])
 
     assert "quorum is 4" in str(failure.value)
+
+
+def test_a_file_based_site_counts_towards_the_quorum_before_it_is_checked(
+    tmp_path: Path,
+    study_protocol: StudyProtocol,
+    three_sites: list[SiteSettings],
+    expected_release: Callable[[SiteSettings, StudyProtocol], SiteRelease],
+) -> None:
+    """Two connected sites and one signed file meet a quorum of three; a bad file is named."""
+    strict = study_protocol.model_copy(update={"quorum": 3})
+    for site in three_sites:
+        assert site.policy_path is not None
+        approve(strict, site.policy_path.parent / "approvals.json")
+    *online, offline = three_sites
+    inbox, admitted = tmp_path / "inbox", tmp_path / "admitted"
+    inbox.mkdir()
+    admitted.mkdir()
+    keys = make_site_keys(tmp_path / "keys")
+    (admitted / f"{offline.site}.pub").write_bytes(keys.public_key.read_bytes())
+    signed = answer_into_file(strict, offline, keys.private_key)
+    (inbox / f"offline{SIGNED_RELEASE_SUFFIX}").write_text(signed.to_json())
+    (inbox / f"garbled{SIGNED_RELEASE_SUFFIX}").write_text("{")
+
+    def files(number: int) -> FileReleases:
+        return read_release_folder(
+            inbox, admitted, protocol_hash=strict.content_hash(), round_number=number
+        )
+
+    with pytest.raises(DeploymentError, match="quorum is 3"):  # the two connected alone
+        _resumable(strict, online, tmp_path / "without-files.sqlite")
+    outcome = _resumable(
+        strict, online, tmp_path / "state.sqlite", expected=[offline.site], file_releases=files
+    )
+
+    (round_one,) = outcome.rounds
+    assert sorted(round_one.releases) == sorted(site.site for site in three_sites)
+    for site in three_sites:  # the direct computation, without Flower or files
+        assert round_one.releases[site.site] == expected_release(site, strict)
+    assert round_one.node_of_site[offline.site] == FILE_NODE_ID
+    assert [f.reason for f in round_one.faults] == [
+        f"garbled{SIGNED_RELEASE_SUFFIX}: refused: not a readable JSON file"
+    ]
