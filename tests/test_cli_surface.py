@@ -24,7 +24,7 @@ def test_root_help_states_the_caution_once_at_the_top() -> None:
 def test_command_lists_do_not_repeat_the_caution() -> None:
     """A group's help page states the caution at most once, however many commands it lists."""
     runner = CliRunner()
-    for group in ([], ["site"], ["site", "ledger"]):
+    for group in ([], ["site"], ["site", "ledger"], ["coordinator"], ["plan"]):
         result = runner.invoke(app, [*group, "--help"], terminal_width=400)
         assert result.exit_code == 0, group
         assert _flat(result.stdout).count("not a medical device") == 1, group

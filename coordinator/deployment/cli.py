@@ -160,9 +160,9 @@ def remove_command(
     "run",
     help=(
         "Run a study from a protocol file on the connected sites and write results.json, "
-        "CSV exports and report.html; run it again after a crash to resume. "
-        f"{RESEARCH_NOTICE}"
+        "CSV exports and report.html; run it again after a crash to resume."
     ),
+    epilog=RESEARCH_NOTICE,
 )
 def run_command(
     state: Annotated[Path, _STATE],
@@ -228,8 +228,9 @@ def run_command(
     help=(
         "Run a protocol's monitoring windows at the connected sites into a results store "
         "(windows already final there are skipped); then read it with "
-        f"sitepool monitor --store. {RESEARCH_NOTICE}"
+        "sitepool monitor --store."
     ),
+    epilog=RESEARCH_NOTICE,
 )
 def monitor_command(
     state: Annotated[Path, _STATE],
