@@ -145,7 +145,12 @@ def monitoring_protocol(
         study_id=f"drift-rehearsal-{scenario.seed}",
         title=f"Rehearsal of drift monitoring at {len(scenario.sites)} invented hospitals",
         model=model,
-        evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES),
+        # Calibration in two bins (cut at 0.5, a histogram edge too): every cut the
+        # release reports is then a histogram edge, so the one-partition rule of the site
+        # gate (site_agent.disclosure.partition) has no interleaved cuts to withhold.
+        evaluation=EvaluationPlan(
+            thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES, calibration_bins=2
+        ),
         operations=(Operation.MONITOR,),
         rounds=scenario.months,
         quorum=1,

@@ -122,7 +122,10 @@ def monitor_images(
             study_id=f"image-monitoring-{chosen.seed}",
             title=f"Drift monitoring of an image model at {len(sites)} invented hospitals",
             model=ModelReference(name="phantom-cnn", architecture="cnn", sha256=sha256),
-            evaluation=EvaluationPlan(thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES),
+            # Two calibration bins: every reported cut is a histogram edge (drift_rehearsal).
+            evaluation=EvaluationPlan(
+                thresholds=(0.5,), histogram_edges=HISTOGRAM_EDGES, calibration_bins=2
+            ),
             operations=(Operation.MONITOR,),
             rounds=windows,
             quorum=1,

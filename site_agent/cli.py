@@ -12,7 +12,6 @@ from pydantic import ValidationError
 from rich.console import Console
 from rich.table import Table
 
-from site_agent.connect_cli import add_connection_commands
 from site_agent.contract.adaptation_release import Performance
 from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
 from site_agent.contract.release import (
@@ -22,6 +21,7 @@ from site_agent.contract.release import (
     SiteRelease,
 )
 from site_agent.data.predictions import validate_predictions
+from site_agent.deployment.cli import add_connection_commands
 from site_agent.disclosure.approvals import approve, list_approvals
 from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
@@ -481,6 +481,7 @@ def fine_tune_command(
             f"  {point.n_used:>5} cases, seed {point.seed}: AUC {_auc_text(point.after.auc)}; "
             f"{_at_thresholds(point.after)}"
         )
+    typer.echo(RESEARCH_NOTICE)
 
 
 @site_app.command(
@@ -516,7 +517,7 @@ def answer_into_file_command(
 ) -> None:
     """Answer a protocol into a signed release file."""
     from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
-    from site_agent.offline_answer import answer_into_file
+    from site_agent.deployment.offline_answer import answer_into_file
     from site_agent.service import SiteSettings
 
     try:
@@ -577,7 +578,7 @@ def run_tasks_command(
     """Serve the SuperNode's tasks until interrupted."""
     import logging
 
-    from site_agent.task_runner import run_tasks
+    from site_agent.deployment.task_runner import run_tasks
 
     logging.getLogger("httpx").setLevel(logging.WARNING)
     typer.echo(RESEARCH_NOTICE)
@@ -599,7 +600,7 @@ def approve_bundle_command(
     ] = Path("approved-bundles.json"),
 ) -> None:
     """Record an app bundle's hash as approved."""
-    from site_agent.app_bundle import approve_bundle
+    from site_agent.deployment.app_bundle import approve_bundle
 
     if len(sha256) != 64 or any(c not in "0123456789abcdefABCDEF" for c in sha256):
         typer.echo("error: a bundle hash is 64 hexadecimal digits", err=True)

@@ -25,11 +25,11 @@ SITE_RUNTIME = (
     "site_agent.service",
     "site_agent.client_app",
     "site_agent.cli",
-    "site_agent.connect_cli",
-    "site_agent.connection",
     "site_agent.evaluation",
+    "site_agent.deployment",
 )
-"""The runtime at the top of the site agent: it uses the wings, never the reverse."""
+"""The runtime at the top of the site agent, and its deployment wing (keys, connection,
+task runner): they use the other wings, never the reverse."""
 
 WING_MAY_NOT_IMPORT: dict[str, tuple[str, ...]] = {
     "site_agent.data": (

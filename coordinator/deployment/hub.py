@@ -33,15 +33,15 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from coordinator.deployment.certificates import check_server_files
 from coordinator.deployment.defaults import DEFAULT_PORT
 from coordinator.runs.loopback import flwr_command, toml_string
-from site_agent.exceptions import DeploymentError, InputError
-from site_agent.flower_processes import (
+from site_agent.deployment.keys import fingerprint, read_public_key
+from site_agent.deployment.processes import (
     LOOPBACK,
     flower_environment,
     flower_tool,
     process_groups,
     wait_for_port,
 )
-from site_agent.keys import fingerprint, read_public_key
+from site_agent.exceptions import DeploymentError, InputError
 
 CONNECTION = "sitepool-hub"
 HUB_FILE = "hub.json"

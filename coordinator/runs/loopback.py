@@ -24,8 +24,7 @@ from contextlib import ExitStack
 from pathlib import Path
 
 from coordinator.runs.server_app import StudyRunConfig
-from site_agent.exceptions import DeploymentError
-from site_agent.flower_processes import (
+from site_agent.deployment.processes import (
     LOOPBACK,
     flower_environment,
     flower_tool,
@@ -34,6 +33,7 @@ from site_agent.flower_processes import (
     site_runner_command,
     wait_for_port,
 )
+from site_agent.exceptions import DeploymentError
 from site_agent.service import SiteSettings
 
 CONNECTION_NAME = "sitepool-loopback"

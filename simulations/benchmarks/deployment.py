@@ -3,7 +3,7 @@
 For 3 and 10 synthetic sites (the default scenario's hospitals, scored by the model bundle
 at each site), one study of ``--rounds`` evaluation rounds runs on the loopback engine:
 one SuperLink, one SuperNode per site in process isolation, and each site's task runner
-(:mod:`site_agent.task_runner`) answering in one warm process. Reported per site count:
+(:mod:`site_agent.deployment.task_runner`) answering in one warm process. Reported per site count:
 
 * ``start``: from starting the processes to the run's submission (SuperLink listening);
 * ``to results``: from the start to the results file (includes the ServerApp's own

@@ -21,9 +21,14 @@ from coordinator.deployment.certificates import (
     check_server_files,
     make_certificates,
 )
-from site_agent.connection import check_hub
+from site_agent.deployment.connection import check_hub
+from site_agent.deployment.keys import (
+    check_private_key,
+    fingerprint,
+    make_site_keys,
+    read_public_key,
+)
 from site_agent.exceptions import DeploymentError, InputError
-from site_agent.keys import check_private_key, fingerprint, make_site_keys, read_public_key
 
 
 @contextmanager

@@ -45,14 +45,14 @@ from site_agent.contract.protocol import (
     uniform_edges,
 )
 from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
+from site_agent.deployment.keys import make_site_keys
+from site_agent.deployment.offline_answer import answer_into_file
+from site_agent.deployment.processes import flower_environment, free_port
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import SitePolicy
 from site_agent.disclosure.repeat_answer import REPEAT_KEY
 from site_agent.exceptions import DeploymentError
-from site_agent.flower_processes import flower_environment, free_port
-from site_agent.keys import make_site_keys
-from site_agent.offline_answer import answer_into_file
 from site_agent.service import SiteSettings
 
 pytestmark = pytest.mark.loopback
@@ -368,7 +368,7 @@ def _runner_pids(state: Path) -> list[int]:
     return [
         pid
         for pid in _pids_with_env("FLWR_HOME", str(state / "flower-home"))
-        if b"site_agent.task_runner" in Path(f"/proc/{pid}/cmdline").read_bytes()
+        if b"site_agent.deployment.task_runner" in Path(f"/proc/{pid}/cmdline").read_bytes()
     ]
 
 

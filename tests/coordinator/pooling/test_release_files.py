@@ -42,11 +42,11 @@ from site_agent.contract.signed_release import (
     verify_release_file,
 )
 from site_agent.contract.wire import ReplyStatus
+from site_agent.deployment.offline_answer import answer_into_file
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import ReleaseLedger, verify_ledger
 from site_agent.disclosure.policy import PrivacySettings, SitePolicy
 from site_agent.exceptions import DeploymentError, ReleaseFileRefused
-from site_agent.offline_answer import answer_into_file
 from site_agent.service import SiteSettings
 
 

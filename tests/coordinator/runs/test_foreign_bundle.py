@@ -16,8 +16,7 @@ import pytest
 from coordinator.runs import loopback
 from coordinator.runs.engines import _configured
 from site_agent.contract.protocol import StudyProtocol
-from site_agent.disclosure.ledger import ReleaseLedger, verify_ledger
-from site_agent.flower_processes import (
+from site_agent.deployment.processes import (
     LOOPBACK,
     flower_environment,
     flower_tool,
@@ -26,6 +25,7 @@ from site_agent.flower_processes import (
     site_runner_command,
     wait_for_port,
 )
+from site_agent.disclosure.ledger import ReleaseLedger, verify_ledger
 from site_agent.service import SiteSettings
 
 pytestmark = pytest.mark.loopback

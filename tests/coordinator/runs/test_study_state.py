@@ -27,11 +27,11 @@ from site_agent import client_app
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.contract.release import SiteRelease
 from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
+from site_agent.deployment.keys import make_site_keys
+from site_agent.deployment.offline_answer import answer_into_file
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.ledger import ReleaseLedger
 from site_agent.exceptions import DeploymentError
-from site_agent.keys import make_site_keys
-from site_agent.offline_answer import answer_into_file
 from site_agent.service import SiteSettings
 
 

@@ -27,7 +27,7 @@ def keys_command(
     out: Annotated[Path, typer.Option("--out", help="Directory for site.key and site.key.pub.")],
 ) -> None:
     """Make the site's key pair; give only site.key.pub to the coordinator."""
-    from site_agent.keys import make_site_keys
+    from site_agent.deployment.keys import make_site_keys
 
     try:
         files = make_site_keys(out)
@@ -66,7 +66,7 @@ def connect_command(
     ] = None,
 ) -> None:
     """Connect out to the hub and answer its requests until Ctrl-C."""
-    from site_agent.connection import SiteConnection, connect_site
+    from site_agent.deployment.connection import SiteConnection, connect_site
     from site_agent.service import SiteSettings
 
     try:

@@ -4,10 +4,11 @@
 consortium's CA certificate, so that a wrong CA, an expired or mismatched server
 certificate or an unreachable hub is named in one line before anything else starts.
 It then starts Flower's ``flower-supernode`` with TLS and the site's authentication key
-(:mod:`site_agent.keys`) in ``--isolation process`` mode, with the site's data, policy and
+(:mod:`site_agent.deployment.keys`) in ``--isolation process`` mode, with the site's data, policy
+and
 ledger in its node configuration, and beside it the site's own task runner
-(:mod:`site_agent.task_runner`): in that mode the SuperNode never installs nor imports a
-run's app bundle; the runner checks each bundle (:mod:`site_agent.app_bundle`), ledgers a
+(:mod:`site_agent.deployment.task_runner`): in that mode the SuperNode never installs nor imports a
+run's app bundle; the runner checks each bundle (:mod:`site_agent.deployment.app_bundle`), ledgers a
 refusal, and answers accepted runs with this installed site agent's ClientApp. The
 SuperNode only connects out to the hub; its local Runtime API, which the runner dials,
 listens on 127.0.0.1.
@@ -33,9 +34,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from types import FrameType
 
-from site_agent.app_bundle import load_approved_bundles
-from site_agent.exceptions import DeploymentError, InputError
-from site_agent.flower_processes import (
+from site_agent.deployment.app_bundle import load_approved_bundles
+from site_agent.deployment.keys import check_private_key, private_fingerprint
+from site_agent.deployment.processes import (
     LOOPBACK,
     flower_environment,
     flower_tool,
@@ -43,7 +44,7 @@ from site_agent.flower_processes import (
     process_groups,
     site_runner_command,
 )
-from site_agent.keys import check_private_key, private_fingerprint
+from site_agent.exceptions import DeploymentError, InputError
 from site_agent.service import SiteSettings
 
 DIAL_TIMEOUT_S = 10.0

@@ -13,17 +13,17 @@ from pathlib import Path
 import pytest
 from flwr.cli.build import build_fab_from_disk
 
-from site_agent.app_bundle import (
+from site_agent.deployment.app_bundle import (
     SITE_CLIENT_APP,
     BundleVerdict,
     approve_bundle,
     check_app_bundle,
     load_approved_bundles,
 )
-from site_agent.connection import SiteConnection, connect_site
+from site_agent.deployment.connection import SiteConnection, connect_site
+from site_agent.deployment.keys import make_site_keys
+from site_agent.deployment.processes import free_port, site_runner_command
 from site_agent.exceptions import InputError
-from site_agent.flower_processes import free_port, site_runner_command
-from site_agent.keys import make_site_keys
 from site_agent.service import SiteSettings
 
 _PROJECT = """[build-system]

@@ -6,7 +6,8 @@ that process. For each task it
 
 1. takes the task (``AcquireTask``, polled every ``poll_s`` seconds) and pulls its input:
    the message, the node's context, the run and the run's app bundle;
-2. checks the bundle (:func:`site_agent.app_bundle.check_app_bundle`) *before anything of it
+2. checks the bundle (:func:`site_agent.deployment.app_bundle.check_app_bundle`) *before anything
+of it
    is installed or imported*: a bundle that carries code and whose hash the site has not
    approved is refused, the refusal is ledgered in the site's release ledger (reason code,
    protocol hash, no data), and the coordinator gets an error reply naming the reason code;
@@ -42,9 +43,9 @@ from flwr.supercore.retry import make_simple_http_retry_invoker
 from flwr.supercore.runtime import RuntimeHttpClient
 from flwr.supernode.runtime.run_clientapp import pull_task_input, push_message, push_task_output
 
-from site_agent.app_bundle import BundleCheck, check_app_bundle, load_approved_bundles
 from site_agent.contract.node_config import LEDGER_PATH_KEY, SITE_NAME_KEY
 from site_agent.contract.wire import decode_request
+from site_agent.deployment.app_bundle import BundleCheck, check_app_bundle, load_approved_bundles
 from site_agent.disclosure.ledger import Outcome, ReleaseLedger
 
 logger = logging.getLogger(__name__)
@@ -167,7 +168,7 @@ def _ledger_refusal(message: Message, context: Context, check: BundleCheck) -> N
 
 
 def main(argv: list[str] | None = None) -> None:
-    """``python -m site_agent.task_runner --runtime-api-address HOST:PORT [...]``."""
+    """``python -m site_agent.deployment.task_runner --runtime-api-address HOST:PORT [...]``."""
     import argparse
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])

@@ -11,7 +11,8 @@ installed. A site agent accepts a bundle only when
 * its SHA-256 is one the site approved (an approved-bundles file, as protocols are approved).
 
 Even an accepted bundle is never installed nor imported: the site's task runner
-(:mod:`site_agent.task_runner`) answers with the ClientApp the hospital installed. The check
+(:mod:`site_agent.deployment.task_runner`) answers with the ClientApp the hospital installed. The
+check
 reads the bundle's zip directory and its ``pyproject.toml`` only, in memory.
 """
 

@@ -33,7 +33,7 @@ _LOG_TAIL_LINES = 25
 def site_runner_command(
     runtime_api_address: str, approved_bundles: Path | None = None
 ) -> list[str]:
-    """Return the command that starts a site's task runner (:mod:`site_agent.task_runner`).
+    """Return the command that starts a site's task runner (:mod:`.task_runner`).
 
     The runner takes the SuperNode's tasks in place of Flower's own ClientApp process,
     so that no code from a run's app bundle is loaded at the site. ``approved_bundles``
@@ -42,7 +42,7 @@ def site_runner_command(
     command = [
         sys.executable,
         "-m",
-        "site_agent.task_runner",
+        "site_agent.deployment.task_runner",
         "--runtime-api-address",
         runtime_api_address,
     ]
