@@ -14,11 +14,6 @@ from typing import Annotated
 
 import typer
 
-from coordinator.pooling.assemble import build_results
-from coordinator.pooling.release_files import file_round, file_sites, read_release_folder
-from coordinator.report.exports import write_exports
-from coordinator.report.study_report import render_report
-from site_agent.contract.protocol import StudyProtocol
 from site_agent.exceptions import SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
 
@@ -43,6 +38,12 @@ def pool_files_command(
     round_number: Annotated[int, typer.Option("--round", min=1, help="Round pooled.")] = 1,
 ) -> None:
     """Check and pool the signed release files of a folder; write results and report."""
+    from coordinator.pooling.assemble import build_results
+    from coordinator.pooling.release_files import file_round, file_sites, read_release_folder
+    from coordinator.report.exports import write_exports
+    from coordinator.report.study_report import render_report
+    from site_agent.contract.protocol import StudyProtocol
+
     try:
         study = StudyProtocol.load(protocol)
         files = read_release_folder(

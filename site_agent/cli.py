@@ -4,33 +4,24 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
-import pandas as pd
 import typer
-from pydantic import ValidationError
 from rich.console import Console
 from rich.table import Table
 
-from site_agent.contract.adaptation_release import Performance
-from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
-from site_agent.contract.release import (
-    UNREGISTERED_PROTOCOL,
-    AucRecord,
-    EstimateRecord,
-    SiteRelease,
-)
-from site_agent.data.predictions import validate_predictions
+from site_agent.contract.node_config import DEFAULT_APPROVALS_FILE, DEFAULT_LEDGER_FILE
 from site_agent.deployment.cli import add_connection_commands
-from site_agent.disclosure.approvals import approve, list_approvals
-from site_agent.disclosure.ledger import DEFAULT_LEDGER_FILE, ReleaseLedger, verify_ledger
-from site_agent.disclosure.policy import DEFAULT_APPROVALS_FILE, SitePolicy, policy_json_schema
-from site_agent.disclosure.small_cells import apply_policy
-from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import InputError, SitepoolError
 from site_agent.notices import RESEARCH_NOTICE
-from site_agent.site_output import site_evaluation_output
-from site_agent.statistics.metrics import MetricsSummary, summarize
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+    from site_agent.contract.adaptation_release import Performance
+    from site_agent.contract.release import AucRecord, EstimateRecord, SiteRelease
+    from site_agent.statistics.metrics import MetricsSummary
+
 
 site_app = typer.Typer(
     epilog=RESEARCH_NOTICE,
@@ -106,6 +97,15 @@ def evaluate_command(
     ] = None,
 ) -> None:
     """Evaluate a predictions table and show what would leave the site."""
+    from site_agent.contract.protocol import EvaluationPlan, StudyProtocol
+    from site_agent.contract.release import UNREGISTERED_PROTOCOL
+    from site_agent.data.predictions import validate_predictions
+    from site_agent.disclosure.policy import SitePolicy
+    from site_agent.disclosure.small_cells import apply_policy
+    from site_agent.evaluation import evaluate_site
+    from site_agent.site_output import site_evaluation_output
+    from site_agent.statistics.metrics import summarize
+
     try:
         if protocol is None:
             plan, protocol_hash = EvaluationPlan(), UNREGISTERED_PROTOCOL
@@ -302,6 +302,9 @@ def approve_command(
     store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_FILE,
 ) -> None:
     """Record a protocol's content hash in the site's approvals file."""
+    from site_agent.contract.protocol import StudyProtocol
+    from site_agent.disclosure.approvals import approve
+
     try:
         approval = approve(StudyProtocol.load(protocol), store)
     except SitepoolError as exc:
@@ -317,6 +320,8 @@ def approve_command(
 )
 def approvals_command(store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_FILE) -> None:
     """List the approvals file."""
+    from site_agent.disclosure.approvals import list_approvals
+
     try:
         approvals = list_approvals(store)
     except SitepoolError as exc:
@@ -336,6 +341,8 @@ def approvals_command(store: Annotated[Path, _STORE_OPTION] = DEFAULT_APPROVALS_
 )
 def policy_schema_command() -> None:
     """Print the policy's JSON Schema."""
+    from site_agent.disclosure.policy import policy_json_schema
+
     typer.echo(json.dumps(policy_json_schema(), indent=2))
 
 
@@ -345,6 +352,8 @@ def ledger_show_command(
     as_json: Annotated[bool, typer.Option("--json", help="One JSON entry per line.")] = False,
 ) -> None:
     """Print the ledger, one line per entry."""
+    from site_agent.disclosure.ledger import ReleaseLedger
+
     try:
         entries = ReleaseLedger(ledger).entries()
     except SitepoolError as exc:
@@ -370,6 +379,8 @@ def ledger_show_command(
 )
 def ledger_verify_command(ledger: Annotated[Path, _LEDGER_OPTION] = DEFAULT_LEDGER_FILE) -> None:
     """Verify the hash chain and exit 1 if any entry was changed, removed or reordered."""
+    from site_agent.disclosure.ledger import verify_ledger
+
     result = verify_ledger(ledger)
     if not result.ok:
         typer.echo(f"ledger check FAILED: {result.problem}", err=True)
@@ -424,6 +435,9 @@ def fine_tune_command(
     ] = None,
 ) -> None:
     """Run the protocol's site-local fine-tuning grid and print the release."""
+    from site_agent.contract.protocol import StudyProtocol
+    from site_agent.disclosure.policy import SitePolicy
+
     try:
         study = StudyProtocol.load(protocol)
         if study.model is None or study.adaptation is None:
@@ -481,130 +495,4 @@ def fine_tune_command(
             f"  {point.n_used:>5} cases, seed {point.seed}: AUC {_auc_text(point.after.auc)}; "
             f"{_at_thresholds(point.after)}"
         )
-    typer.echo(RESEARCH_NOTICE)
-
-
-@site_app.command(
-    "answer-into-file",
-    help=(
-        "For a site that cannot connect: answer one round of a study protocol through the "
-        "site's disclosure gate (approval, policy, privacy budget, ledger, exactly as a "
-        "connected answer) and write the reply, signed with the site's key, to a file the "
-        "coordinator can pool."
-    ),
-    epilog=RESEARCH_NOTICE,
-)
-def answer_into_file_command(
-    protocol: Annotated[Path, typer.Argument(help="Study protocol JSON the site approved.")],
-    site: Annotated[str, typer.Option("--site", help="This site's name, as admitted.")],
-    data: Annotated[Path, typer.Option("--data", help="The site's predictions table.")],
-    policy: Annotated[Path, typer.Option("--policy", help="The site's disclosure policy.")],
-    ledger: Annotated[Path, _LEDGER_OPTION],
-    key: Annotated[Path, typer.Option("--key", help="The site's OpenSSH ECDSA P-384 private key.")],
-    out: Annotated[
-        Path,
-        typer.Option("--out", help="File to write; its name must end in .signed-release.json."),
-    ],
-    round_number: Annotated[int, typer.Option("--round", min=1, help="Round answered.")] = 1,
-    bundle: Annotated[
-        Path | None,
-        typer.Option("--bundle", help="Model bundle, when the table has no score column."),
-    ] = None,
-    coordinator: Annotated[
-        str | None,
-        typer.Option("--coordinator", help="Coordinator name, if the policy names allowed ones."),
-    ] = None,
-) -> None:
-    """Answer a protocol into a signed release file."""
-    from site_agent.contract.signed_release import SIGNED_RELEASE_SUFFIX
-    from site_agent.deployment.offline_answer import answer_into_file
-    from site_agent.service import SiteSettings
-
-    try:
-        if not out.name.endswith(SIGNED_RELEASE_SUFFIX):
-            raise InputError(f"--out must end in {SIGNED_RELEASE_SUFFIX}")
-        settings = SiteSettings(site=site, data_path=data, policy_path=policy, ledger_path=ledger)
-        signed = answer_into_file(
-            StudyProtocol.load(protocol),
-            settings,
-            key,
-            round_number=round_number,
-            bundle=None if bundle is None else bundle.read_bytes(),
-            coordinator=coordinator,
-        )
-    except (SitepoolError, ValidationError, OSError) as exc:
-        typer.echo(f"error: {_one_line(exc)}", err=True)
-        raise typer.Exit(code=2) from exc
-    out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(signed.to_json())
-    reply = signed.reply
-    typer.echo(f"{reply.status.value}: {reply.reason or 'statistics released'}")
-    typer.echo(f"ledger entry {signed.ledger_sequence}, signed by {signed.key_fingerprint}")
-    typer.echo(f"wrote {out}")
-    typer.echo(RESEARCH_NOTICE)
-
-
-def _one_line(exc: BaseException) -> str:
-    if isinstance(exc, ValidationError):
-        first = exc.errors()[0]
-        return f"invalid {'.'.join(str(p) for p in first['loc'])}: {first['msg']}"
-    if isinstance(exc, OSError):
-        return f"cannot read {exc.filename}: {exc.strerror}"
-    return str(exc)
-
-
-@site_app.command(
-    "run-tasks",
-    help=(
-        "Answer the tasks of this site's SuperNode (started with --isolation process) in one "
-        "process, with the site agent installed here only: a run whose app bundle carries "
-        "code, unless its hash was approved, is refused before any of it is installed or "
-        "imported, and the refusal is ledgered. Runs until stopped."
-    ),
-    epilog=RESEARCH_NOTICE,
-)
-def run_tasks_command(
-    runtime_api_address: Annotated[
-        str,
-        typer.Option(
-            "--runtime-api-address", help="The SuperNode's --host:--port, e.g. 127.0.0.1:9094."
-        ),
-    ],
-    approved_bundles: Annotated[
-        Path | None,
-        typer.Option("--approved-bundles", help="The site's approved app-bundle hashes (JSON)."),
-    ] = None,
-) -> None:
-    """Serve the SuperNode's tasks until interrupted."""
-    import logging
-
-    from site_agent.deployment.task_runner import run_tasks
-
-    logging.getLogger("httpx").setLevel(logging.WARNING)
-    typer.echo(RESEARCH_NOTICE)
-    run_tasks(runtime_api_address, approved_bundles=approved_bundles)
-
-
-@site_app.command(
-    "approve-bundle",
-    help=(
-        "Approve a run's app bundle by its SHA-256, so a bundle that carries code is "
-        "accepted (the site still answers with its own installed ClientApp)."
-    ),
-    epilog=RESEARCH_NOTICE,
-)
-def approve_bundle_command(
-    sha256: Annotated[str, typer.Argument(help="The bundle's SHA-256 (64 hex digits).")],
-    store: Annotated[
-        Path, typer.Option("--store", help="The site's approved-bundles file.")
-    ] = Path("approved-bundles.json"),
-) -> None:
-    """Record an app bundle's hash as approved."""
-    from site_agent.deployment.app_bundle import approve_bundle
-
-    if len(sha256) != 64 or any(c not in "0123456789abcdefABCDEF" for c in sha256):
-        typer.echo("error: a bundle hash is 64 hexadecimal digits", err=True)
-        raise typer.Exit(code=2)
-    approve_bundle(sha256, store)
-    typer.echo(f"approved app bundle {sha256.lower()} in {store}")
     typer.echo(RESEARCH_NOTICE)

@@ -10,6 +10,8 @@ policy and ledger paths, each without importing the other.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 SITE_NAME_KEY = "site-name"
 DATA_PATH_KEY = "data-path"
 POLICY_PATH_KEY = "policy-path"
@@ -19,3 +21,9 @@ IMAGE_CONFIG_KEY = "image-config-path"
 
 UNNAMED_SITE = "unnamed-site"
 """Site name used in a reply when the node's configuration names no site."""
+
+DEFAULT_LEDGER_FILE = Path("release-ledger.jsonl")
+"""The site's release ledger when its command line names none."""
+
+DEFAULT_APPROVALS_FILE = Path("approvals.json")
+"""The site's approvals file when its policy or command line names none."""

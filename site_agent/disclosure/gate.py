@@ -202,7 +202,7 @@ def _released(
             )
         history, footprints = ReleaseHistory(ledger.path), None
         if epsilon is None:  # under differential privacy the budget bounds what releases add
-            footprints = release_footprints(answered.release, release, note.cuts_withheld())
+            footprints = release_footprints(answered.release, release, note)
             history.check(
                 session,
                 study_id=study_id,

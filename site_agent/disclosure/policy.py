@@ -36,6 +36,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 
 from site_agent.contract.adaptation_release import ThresholdPerformance
 from site_agent.contract.protocol import Operation, UpdateNoise
+from site_agent.contract.node_config import DEFAULT_APPROVALS_FILE
 from site_agent.exceptions import InputError
 from site_agent.statistics.censored import Cell, CensoredCount, censor_pair
 from site_agent.statistics.summaries import ConfusionCounts
@@ -46,7 +47,6 @@ from site_agent.statistics.summaries import ConfusionCounts
 DEFAULT_MIN_CELL = 5
 DEFAULT_STUDY_EPSILON = 1.0
 DEFAULT_RELEASE_EPSILON = 0.25
-DEFAULT_APPROVALS_FILE = Path("approvals.json")
 
 
 class SmallCellAction(StrEnum):

@@ -62,6 +62,7 @@ from site_agent.disclosure.ledger import GENESIS_HASH, LedgerEntry, LedgerSessio
 from site_agent.disclosure.partition import CLASSES, cumulative_counts, score_cuts
 from site_agent.disclosure.policy import HistoryScope, SitePolicy
 from site_agent.disclosure.refusals import RefusalCode, refusal
+from site_agent.disclosure.small_cells import DisclosureNote
 from site_agent.exceptions import LedgerError
 from site_agent.statistics.summaries import SufficientStatistics
 
@@ -99,26 +100,28 @@ class HistoryRecord(_Frozen):
 
 
 def release_footprints(
-    computed: SiteRelease, released: SiteRelease, cuts_withheld: dict[str, tuple[float, ...]]
+    computed: SiteRelease, released: SiteRelease, note: DisclosureNote
 ) -> tuple[Footprint, ...]:
     """Return the footprints of a release: counts at cuts from the one computed at the site.
 
     ``released`` is the same release after small-cell control (its totals are what left:
-    a withheld pending count is not in them); ``cuts_withheld`` (by class) are the cuts
-    the partition rule did not let out. The counts at every other cut are derivable from
-    what left, since the partition rule makes every released count a difference of counts
-    at kept cuts; they are read from ``computed``, whose bins are not suppressed.
+    a withheld pending count is not in them); ``note`` says which cuts the partition rule
+    did not let out, for the site and for each attribute's levels. The counts at every
+    other cut are derivable from what left, since the partition rule makes every released
+    count of a population a difference of its counts at its kept cuts; they are read from
+    ``computed``, whose bins are not suppressed.
     """
-    populations: list[tuple[str, SufficientStatistics, SufficientStatistics]] = [
-        (SITE_KEY, computed.statistics, released.statistics)
+    populations: list[tuple[str, str | None, SufficientStatistics, SufficientStatistics]] = [
+        (SITE_KEY, None, computed.statistics, released.statistics)
     ]
     populations += [
-        (f"{s.attribute}={s.level}", s.statistics, r.statistics)
+        (f"{s.attribute}={s.level}", s.attribute, s.statistics, r.statistics)
         for s, r in zip(computed.subgroups, released.subgroups, strict=True)
     ]
     out = []
-    for key, stats, left in populations:
+    for key, attribute, stats, left in populations:
         cuts = score_cuts(stats)
+        cuts_withheld = note.cuts_withheld(attribute)
         by_class = []
         for which, name in enumerate(CLASSES):
             kept = [c for c in cuts if c not in set(cuts_withheld.get(name, ()))]

@@ -25,7 +25,11 @@ STABLE = ("Northgate General", "Lowmoor Community Hospital", "Kestrel Valley Cli
 
 @pytest.mark.slow
 def test_only_the_site_that_changes_scanner_alarms(tmp_path: Path) -> None:
-    """Riverside alarms on its score distribution from window 4; stable sites stay quiet."""
+    """Riverside alarms on its score distribution within 2 windows of the change (window 4).
+
+    Stable sites stay quiet. The target of 2 windows is the drift monitor's (as in the
+    feature-table drift rehearsal); the change lands in window 4.
+    """
     result = CliRunner().invoke(app, ["rehearse-drift", "--images", "--out", str(tmp_path)])
 
     assert result.exit_code == 0, result.output
@@ -33,7 +37,7 @@ def test_only_the_site_that_changes_scanner_alarms(tmp_path: Path) -> None:
     alarmed = {a["site"] for a in findings["alarms"]}
     assert alarmed == {DRIFTING}
     distribution = [a for a in findings["alarms"] if a["metric"] == "score_distribution"]
-    assert distribution and min(a["window_number"] for a in distribution) == 4
+    assert distribution and 4 <= min(a["window_number"] for a in distribution) < 4 + 2
     page = (tmp_path / "drift-report.html").read_text()
     assert f"Injected: {DRIFTING} changes scanner from window 4" in page
     assert " ".join(result.output.split()).endswith(" ".join(RESEARCH_NOTICE.split()))
