@@ -128,11 +128,23 @@ def test_sensitivity_on_a_censored_cell_is_a_range_holding_recall() -> None:
 def test_report_shows_censored_cells_and_says_which_sites_meta_analysis_left_out(
     tmp_path: Path,
 ) -> None:
-    """The 2x2 tables show '<10'; the specificity meta-analysis names the site it left out."""
+    """The 2x2 tables show censored cells as such; the meta-analysis names the site left out.
+
+    A cell censored by the small-cell rule reads "<10"; one whose threshold the
+    one-partition rule withheld reads as the range between the neighbouring released
+    thresholds ("12–30"). Either way it is the cell's own text, never a count.
+    """
     results = _results()
     html = render_report(results, tmp_path / "report.html").read_text()
 
-    assert "&lt;10" in html
+    censored = [
+        cell.text()
+        for t in results.two_by_two
+        for cell in (t.tp, t.fp, t.fn, t.tn)
+        if isinstance(cell, CensoredCount)
+    ]
+    assert censored
+    assert all(text.replace("<", "&lt;") in html for text in censored)
     left_out = [
         t.site for t in results.two_by_two if t.site != POOLED and isinstance(t.fp, CensoredCount)
     ]
