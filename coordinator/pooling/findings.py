@@ -61,16 +61,14 @@ def study_findings(
         if row.metric == "auc" and row.subgroup == "role=external":
             findings.append(
                 f"Across the external sites alone (REML, HKSJ), the mean AUC is "
-                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); {level} "
-                f"prediction interval for a new site {row.prediction_lower:.3f} to "
-                f"{row.prediction_upper:.3f}."
+                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); "
+                f"{_new_site(row.prediction_lower, row.prediction_upper, level)}."
             )
         if row.metric == "auc" and row.method == "reml" and row.subgroup is None:
             findings.append(
                 f"Random-effects meta-analysis (REML, HKSJ) gives a mean AUC of "
-                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); a new site "
-                f"should expect an AUC between {row.prediction_lower:.3f} and "
-                f"{row.prediction_upper:.3f} ({level} prediction interval); "
+                f"{row.estimate:.3f} ({level} CI {row.lower:.3f} to {row.upper:.3f}); "
+                f"{_new_site(row.prediction_lower, row.prediction_upper, level)}; "
                 f"I² = {100 * row.i2:.0f}%."
             )
     not_released = [o for o in outcomes if o.status != "released"]
@@ -81,3 +79,13 @@ def study_findings(
             + "."
         )
     return findings
+
+
+def _new_site(lower: float, upper: float, level: str) -> str:
+    """Return the prediction interval for a new site, or why there is none (never 'nan')."""
+    if math.isfinite(lower) and math.isfinite(upper):
+        return f"{level} prediction interval for a new site {lower:.3f} to {upper:.3f}"
+    return (
+        "no prediction interval for a new site: it needs at least three sites "
+        "(t with k − 2 degrees of freedom)"
+    )
