@@ -1,4 +1,4 @@
-"""One partition per release: every count on the score axis controlled together.
+"""One partition per population: every count on the score axis controlled together.
 
 A release reports the score axis in several ways at once: confusion counts at each
 threshold (a case is called positive when ``score >= t``), histogram bins and calibration
@@ -7,28 +7,69 @@ for each class, how many cases score at or above some *cut*; the differences bet
 two cuts, whatever reported them, give the count between them. The finest partition a
 release implies is therefore the one made by *all* its cuts together: thresholds that
 fall between two neighbouring scores, or inside a histogram bin, split off a few cases
-that no single released count shows.
+that no single released count shows. (The module is longer than most: the rule, the
+argument for it and its application to each kind of count are kept together.)
 
 Rule (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
 ----------------------------------------------------------------
-For each class (positive, negative) separately, every cell of the finest partition,
-for the site, for each subgroup level and for the rest of each subgroup attribute (cases
-in no released level), must hold 0 or at least ``m`` cases, and no combination of
-subgroup counts in a cell (:mod:`site_agent.disclosure.subgroup_combinations`) may be
-small. Where a cell breaks the rule, cuts are taken away until none does; dynamic
-programming keeps the most cuts, thresholds first. A cut taken away is withheld in the
-same way by everything that reported it:
+For each class (positive, negative) separately; dynamic programming keeps the most cuts,
+thresholds first.
+
+1. *The site*, ``K_site``: every cell of the site's partition holds 0 or at least ``m``.
+2. *The subgroups*, ``K_sub ⊆ K_site``, one set for every level of every attribute:
+   every cell of each level and of each attribute's rest (cases in no released level)
+   holds 0 or at least ``m``, and no combination of subgroup counts in a cell
+   (:mod:`site_agent.disclosure.subgroup_combinations`) is small.
+3. *The site's own cuts*: the site keeps a cut the subgroups lost only when the release
+   has one subgroup attribute and, inside the subgroup cell around the cut, every level
+   and the rest that has cases there has cases in each of the site's cells there.
+   Otherwise the site loses the cut too (its other cuts first, thresholds last).
+
+A small level thus no longer costs the site a pre-registered threshold, unless the site
+would show what the level hides (step 3). A cut taken away from a population is withheld
+by everything of that population that reported it:
 
 - a threshold loses the cells of that class (``tp`` and ``fn``, or ``fp`` and ``tn``),
-  which are suppressed (set to 0 and listed in the note, with its patient moments);
+  which are censored (a range, listed in the note, with its patient moments);
 - a histogram or calibration edge is merged away (policy ``merge``: the bins either side
   become one) or the bins either side are suppressed (policy ``suppress``); calibration
   bins count both classes, so their edge goes if either class loses it;
-- the note lists the cuts each class lost (``positive_cuts_withheld``,
-  ``negative_cuts_withheld``), so the coordinator can say which thresholds were merged.
+- the note lists the cuts each class lost for the site (``positive_cuts_withheld``,
+  ``negative_cuts_withheld``) and, per attribute, those its levels lost
+  (``attribute_cuts_withheld``, which include the site's).
 
-Every count still released is then a difference of cumulative counts at kept cuts, i.e.
-a union of cells that each hold 0 or at least ``m`` cases.
+Every count still released for a population is then a difference of its cumulative
+counts at its kept cuts, i.e. a union of its cells that each hold 0 or at least ``m``.
+
+Why the site's own cuts isolate nobody
+--------------------------------------
+The standard is the tests' (``tests/site_agent/disclosure/test_combined_releases.py``):
+a set of cases is exposed when its indicator is a linear combination of the sets behind
+the released numbers, every empty group of cases counting as known. Fix a class; ``P(c)``
+is the count of population ``P`` at or above ``c``. What is released is exactly ``S(c)``
+for the site at ``c ∈ {0} ∪ K_site`` and ``L(c)`` for every level at ``c ∈ {0} ∪ K_sub``;
+every other count is a difference of these. Take a subgroup cell ``[a, b)`` holding the
+site's cells ``f₁ … f_k`` (``k ≥ 2``, cut at site-only cuts such as ``c``). Each released
+set meets ``[a, b)`` in a whole site cell ``f_i`` or in a whole level cell ``L ∩ [a, b)``
+(``L(a) − L(b)``; ``L(c)`` is not released), so a derivable set is derivable cell by cell,
+as ``Σ αᵢ·fᵢ + Σ γ_L·L`` taking 0 or 1 on every occupied group ``(fᵢ, L)``. By step 3
+every level with cases in ``[a, b)`` occupies every ``fᵢ``: if ``αᵢ ≠ αⱼ``, then
+``αᵢ + γ_L`` and ``αⱼ + γ_L`` in ``{0, 1}`` for every ``L`` force one ``γ`` for all levels,
+and the set is a union of whole site cells; if all ``α`` are equal it is a union of whole
+level cells. Either holds 0 or at least ``m`` cases (steps 1 and 2). So neither a level's
+count in ``[a, c)`` or ``[c, b)``, nor ``S(c) − Σ_{L′≠L} L′(c)`` (the ``L′(c)`` are
+withheld), nor any other combination isolates fewer than ``m`` cases.
+
+Why step 3 is needed: when a level has no case in ``[a, c)``, ``(S(c) − S(b)) − (L(a) −
+L(b))`` *is* the count of everyone else in ``[c, b)``, small when that is why ``c`` went
+for the subgroups (tested). Why one shared ``K_sub`` and one attribute: levels of two
+attributes may occupy the two sides of ``c`` crosswise (``A₁∩B₁`` and ``A₂∩B₂`` below,
+``A₁∩B₂`` and ``A₂∩B₁`` above) and then every group is derivable, though each level has
+cases on both sides; the release holds no joint counts to rule this out. With one set per
+attribute the brute-force search found 1 to 4 cases derivable on nested and on crossing
+designs. Not covered here: pending cases (no class of this rule; their bins are
+controlled by :mod:`site_agent.disclosure.small_cells`) and agreement tables (one series
+per reader, see :func:`control_agreement`).
 
 Agreement tables of the model at a threshold against a binary reader form one more cut
 series per reader (cases the reader called 0, and called 1): a table whose threshold would
@@ -40,6 +81,7 @@ with differential privacy on, it runs on the noisy counts (post-processing).
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -68,12 +110,18 @@ _THRESHOLD_WEIGHT = 1000
 
 @dataclass
 class PartitionControl:
-    """What the partition rule changed in a release (merged into the disclosure note)."""
+    """What the partition rule changed in a release (merged into the disclosure note).
+
+    ``cuts_withheld`` are the site's, by class; ``attribute_cuts_withheld`` maps each
+    subgroup attribute to the cuts withheld for its levels, by class (a superset of the
+    site's; the same set for every attribute, see the module docstring).
+    """
 
     suppressed: list[str] = field(default_factory=list)
     merged: list[str] = field(default_factory=list)
     withheld: list[str] = field(default_factory=list)
     cuts_withheld: dict[str, tuple[float, ...]] = field(default_factory=dict)
+    attribute_cuts_withheld: dict[str, dict[str, tuple[float, ...]]] = field(default_factory=dict)
 
 
 def control_partition(
@@ -101,25 +149,35 @@ def control_partition(
     for sub in release.subgroups:
         by_attribute.setdefault(sub.attribute, []).append(sub.statistics)
     out = PartitionControl()
-    kept: dict[str, frozenset[float]] = {}
+    site_kept: dict[str, frozenset[float]] = {}
+    subgroup_kept: dict[str, frozenset[float]] = {}
     for which, name in enumerate(CLASSES):
         site_row = _cells(site, cuts, which)
-        level_rows = [[_cells(s, cuts, which) for s in levels] for levels in by_attribute.values()]
-        rows = [site_row, *(r for levels in level_rows for r in levels)]
-        rows += [site_row - np.sum(levels, axis=0) for levels in level_rows]
-        starts = _kept_starts(np.array(rows), weights, m)
+        site_starts = _kept_starts(site_row[np.newaxis, :], weights, m)
         if release.subgroups:
-            starts = _merge_combinations(starts, site_row, level_rows, m)
-        kept[name] = frozenset(cuts[s - 1] for s in starts if s > 0)
-        out.cuts_withheld[name] = tuple(c for c in cuts if c not in kept[name])
+            level_rows = [
+                [_cells(s, cuts, which) for s in levels] for levels in by_attribute.values()
+            ]
+            site_starts, starts = _subgroup_starts(site_starts, site_row, level_rows, weights, m)
+            subgroup_kept[name] = frozenset(cuts[s - 1] for s in starts if s > 0)
+            withheld = tuple(c for c in cuts if c not in subgroup_kept[name])
+            for attribute in by_attribute:
+                out.attribute_cuts_withheld.setdefault(attribute, {})[name] = withheld
+        site_kept[name] = frozenset(cuts[s - 1] for s in site_starts if s > 0)
+        out.cuts_withheld[name] = tuple(c for c in cuts if c not in site_kept[name])
     controlled = release.model_copy(
         update={
-            "statistics": _apply(site, kept, action, m, "statistics", out),
+            "statistics": _apply(site, site_kept, action, m, "statistics", out),
             "subgroups": tuple(
                 sub.model_copy(
                     update={
                         "statistics": _apply(
-                            sub.statistics, kept, action, m, f"subgroups[{i}].statistics", out
+                            sub.statistics,
+                            subgroup_kept,
+                            action,
+                            m,
+                            f"subgroups[{i}].statistics",
+                            out,
                         )
                     }
                 )
@@ -219,6 +277,79 @@ def _kept_starts(
         end = int(back[end])
         starts.append(end)
     return starts[::-1]
+
+
+def _kept_within(
+    rows: npt.NDArray[np.int64],
+    weights: npt.NDArray[np.float64],
+    m: int,
+    allowed: list[int],
+) -> list[int]:
+    """Return the kept group starts, as :func:`_kept_starts`, among ``allowed`` starts only.
+
+    ``allowed`` (increasing, from 0) are the site's kept starts: cells between two of them
+    are summed into one before the search, so the result is a subset of ``allowed``.
+    """
+    grouped = np.add.reduceat(rows, allowed, axis=1)
+    return [allowed[g] for g in _kept_starts(grouped, weights[allowed], m)]
+
+
+def _subgroup_starts(
+    site_starts: list[int],
+    site_row: npt.NDArray[np.int64],
+    level_rows: list[list[npt.NDArray[np.int64]]],
+    weights: npt.NDArray[np.float64],
+    m: int,
+) -> tuple[list[int], list[int]]:
+    """Return the site's and the subgroups' kept starts (steps 2 and 3 of the rule).
+
+    With two or more attributes the site keeps the subgroups' starts: their joint
+    occupancy is not in the release (module docstring).
+    """
+    rows = [r for levels in level_rows for r in levels]
+    rows += [site_row - np.sum(levels, axis=0) for levels in level_rows]
+    starts = _kept_within(np.array(rows), weights, m, site_starts)
+    starts = _merge_combinations(starts, site_row, level_rows, m)
+    if len(level_rows) > 1:
+        return list(starts), starts
+    return _occupied_on_every_side(site_starts, starts, np.array(rows), weights), starts
+
+
+def _occupied_on_every_side(
+    site_starts: list[int],
+    starts: list[int],
+    rows: npt.NDArray[np.int64],
+    weights: npt.NDArray[np.float64],
+) -> list[int]:
+    """Take away the site's own cuts until no row is empty in part of a subgroup cell.
+
+    Inside each subgroup cell, every row (a level or the rest) that is not 0 on the whole
+    cell must be non-zero in each of the site's cells there; where one is 0, the site cut
+    on the lighter side of that site cell is taken away (the cut of a threshold last).
+    """
+    kept = set(starts)
+    site = list(site_starts)
+    bounds = [*starts, rows.shape[1]]
+    for lo, hi in itertools.pairwise(bounds):
+        while True:
+            inner = [s for s in site if lo < s < hi]
+            edges = [lo, *inner, hi]
+            empty = next(
+                (
+                    (u, v)
+                    for row in rows
+                    if row[lo:hi].any()
+                    for u, v in itertools.pairwise(edges)
+                    if not row[u:v].any()
+                ),
+                None,
+            )
+            if empty is None or not inner:
+                break
+            u, v = empty
+            candidates = [c for c in (u, v) if c not in kept and lo < c < hi]
+            site.remove(min(candidates, key=lambda c: weights[c]))
+    return site
 
 
 def _merge_combinations(

@@ -11,8 +11,9 @@ What is kept (a :class:`Footprint` per population of a release)
 ----------------------------------------------------------------
 For the site and for each subgroup level: the totals (cases, positives, negatives,
 pending) and, for each class, the count at or above every score cut the release let out
-for that class (cuts withheld by the partition rule are left out). These are the numbers
-anyone holding the release can derive; nothing per case.
+for that class and population (cuts the partition rule withheld for the site, or for the
+subgroups, are left out). These are the numbers anyone holding the release can derive;
+nothing per case.
 
 Rule (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
 ----------------------------------------------------------------

@@ -20,12 +20,13 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    total may be small (nested levels, overlaps of three attributes;
    :mod:`site_agent.disclosure.subgroup_combinations` states the rule). More than
    ``MAX_COMBINED_ATTRIBUTES`` attributes in one release are refused.
-4a. One partition per release: all thresholds, histogram and calibration edges together
-   cut the score axis into cells; in each class, every cell of the site, of each subgroup
-   level and of each attribute's rest holds 0 or at least ``m`` cases. Cuts that break
-   this are withheld by everything that reports them (threshold cells suppressed, bins
-   merged or suppressed as the policy says) and listed in the note
-   (:mod:`site_agent.disclosure.partition`). Model-versus-reader agreement tables whose
+4a. One partition per population: all thresholds, histogram and calibration edges
+   together cut the score axis into cells; in each class, every cell of the site, of each
+   subgroup level and of each attribute's rest holds 0 or at least ``m`` cases. The site's
+   cuts are chosen from the site alone; each attribute's levels keep a subset of them.
+   Cuts that break this are withheld by everything of that population that reports them
+   (threshold cells censored, bins merged or suppressed as the policy says) and listed in
+   the note (:mod:`site_agent.disclosure.partition`). Model-versus-reader agreement tables whose
    threshold splits off a small count of a reader's calls are withheld.
 5. Small cells: a small confusion cell and its partner in the same class (class totals
    are released) are marked censored, with the range each can be and the class total
@@ -92,6 +93,18 @@ from site_agent.statistics.summaries import (
 )
 
 
+class AttributeCutsWithheld(BaseModel):
+    """The score cuts withheld for the levels of one subgroup attribute (partition rule)."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    attribute: str
+    positive: tuple[float, ...] = ()
+    """Cuts at which no positive count of any level of the attribute is released."""
+    negative: tuple[float, ...] = ()
+    """The same for negative cases."""
+
+
 class DisclosureNote(BaseModel):
     """What the site's policy did to a release; sent beside it and kept in the ledger."""
 
@@ -115,9 +128,20 @@ class DisclosureNote(BaseModel):
     they would split off fewer than ``min_cell`` positive cases (partition rule)."""
     negative_cuts_withheld: tuple[float, ...] = ()
     """The same for negative cases."""
+    attribute_cuts_withheld: tuple[AttributeCutsWithheld, ...] = ()
+    """Per subgroup attribute, the cuts withheld for its levels: the site's, and those at
+    which a level or the attribute's rest would split off fewer than ``min_cell`` cases.
+    The site's own counts at a cut listed only here are released."""
 
-    def cuts_withheld(self) -> dict[str, tuple[float, ...]]:
-        """Return the withheld cuts by class (``positive``, ``negative``)."""
+    def cuts_withheld(self, attribute: str | None = None) -> dict[str, tuple[float, ...]]:
+        """Return the withheld cuts by class (``positive``, ``negative``).
+
+        The site's, or with ``attribute`` those of that attribute's levels (the site's
+        when the note lists nothing for it).
+        """
+        for entry in self.attribute_cuts_withheld:
+            if attribute is not None and entry.attribute == attribute:
+                return {"positive": entry.positive, "negative": entry.negative}
         return {
             "positive": self.positive_cuts_withheld,
             "negative": self.negative_cuts_withheld,
@@ -204,12 +228,14 @@ class _Note:
         self.epsilon: float | None = None
         self.noise_scale: float | None = None
         self.cuts_withheld: dict[str, tuple[float, ...]] = {}
+        self.attribute_cuts_withheld: dict[str, dict[str, tuple[float, ...]]] = {}
 
     def absorb(self, partition: PartitionControl) -> None:
         self.suppressed.extend(partition.suppressed)
         self.merged.extend(partition.merged)
         self.withheld.extend(partition.withheld)
         self.cuts_withheld.update(partition.cuts_withheld)
+        self.attribute_cuts_withheld.update(partition.attribute_cuts_withheld)
 
     def freeze(self) -> DisclosureNote:
         return DisclosureNote(
@@ -222,6 +248,14 @@ class _Note:
             noise_scale=self.noise_scale,
             positive_cuts_withheld=self.cuts_withheld.get("positive", ()),
             negative_cuts_withheld=self.cuts_withheld.get("negative", ()),
+            attribute_cuts_withheld=tuple(
+                AttributeCutsWithheld(
+                    attribute=attribute,
+                    positive=by_class.get("positive", ()),
+                    negative=by_class.get("negative", ()),
+                )
+                for attribute, by_class in self.attribute_cuts_withheld.items()
+            ),
         )
 
 

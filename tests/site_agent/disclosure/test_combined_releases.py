@@ -34,7 +34,8 @@ from site_agent.disclosure.small_cells import DisclosureNote, apply_policy
 from site_agent.disclosure.subgroup_combinations import combination_isolates
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused, LedgerError
-from site_agent.statistics.summaries import MODEL_CATEGORY, SufficientStatistics
+from site_agent.statistics.censored import CensoredCount
+from site_agent.statistics.summaries import MODEL_CATEGORY, ConfusionCounts, SufficientStatistics
 
 SITE = "northgate-general"
 M = 5
@@ -354,7 +355,7 @@ def _released_with_history(
     history = ReleaseHistory(ledger.path)
     raw = _evaluate(frame, EvaluationPlan())
     controlled, note = apply_policy(raw, policy)
-    footprints = release_footprints(raw, controlled, note.cuts_withheld())
+    footprints = release_footprints(raw, controlled, note)
     with ledger.session() as session:
         history.check(
             session, study_id=study_id, window=window, footprints=footprints, policy=policy
@@ -419,3 +420,133 @@ def test_a_history_record_without_its_ledger_entry_stops_releases(tmp_path: Path
 
     with pytest.raises(LedgerError, match="names no ledger entry"):
         _released_with_history(tmp_path, frame)
+
+
+# --------------------------------------------------------------------------- per attribute
+
+
+def _blocks(n: int, spans: dict[str, tuple[int, int]]) -> list[str]:
+    """Return a level per row: ``spans`` maps each level to its rows ``[start, stop)``."""
+    values = [""] * n
+    for level, (start, stop) in spans.items():
+        values[start:stop] = [level] * (stop - start)
+    return values
+
+
+def _confusion_at(stats: SufficientStatistics, threshold: float) -> ConfusionCounts:
+    return next(c for c in stats.confusion if c.threshold == threshold)
+
+
+def _assert_cuts_nest(note: DisclosureNote) -> None:
+    """Every attribute's withheld cuts include the site's, in each class."""
+    site = note.cuts_withheld()
+    for entry in note.attribute_cuts_withheld:
+        own = note.cuts_withheld(entry.attribute)
+        assert all(set(site[name]) <= set(own[name]) for name in ("positive", "negative"))
+
+
+def test_small_subgroup_level_keeps_the_sites_threshold_and_withholds_its_own() -> None:
+    """ICU (10 positives, 3 at or above 0.5) loses 0.5; the site's counts at 0.5 stay exact."""
+    n = 200
+    frame = _cohort_frame({"unit": _blocks(n, {"icu": (0, 20), "ward": (20, n)})}, n)
+    icu_positive = [0.7, 0.8, 0.9, 0.2, 0.3, 0.1, 0.25, 0.35, 0.15, 0.05]
+    icu_negative = [0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.12]
+    frame.loc[0:19:2, "score"] = icu_positive  # even rows are positives (labels 1, 0, ...)
+    frame.loc[1:19:2, "score"] = icu_negative
+    plan = EvaluationPlan(thresholds=(0.5,), subgroups=("unit",))
+    raw = _evaluate(frame, plan)
+    icu = next(i for i, s in enumerate(raw.subgroups) if s.level == "icu")
+    assert _confusion_at(raw.subgroups[icu].statistics, 0.5).tp == 3  # small: 1..4
+    site_raw = _confusion_at(raw.statistics, 0.5)
+    assert site_raw.tp >= M and site_raw.fn >= M  # nothing small at 0.5 for the site
+    policy = SitePolicy(min_cell=M, allowed_subgroup_attributes=("unit",))
+
+    for action in (SmallCellAction.SUPPRESS, SmallCellAction.MERGE):
+        controlled, note = apply_policy(raw, policy.model_copy(update={"small_cells": action}))
+
+        site = _confusion_at(controlled.statistics, 0.5)
+        assert (site.tp, site.fn, site.fp, site.tn) == (
+            site_raw.tp,
+            site_raw.fn,
+            site_raw.fp,
+            site_raw.tn,
+        )
+        assert 0.5 not in note.positive_cuts_withheld
+        assert 0.5 in note.cuts_withheld("unit")["positive"]
+        _assert_cuts_nest(note)
+        assert isinstance(
+            _confusion_at(controlled.subgroups[icu].statistics, 0.5).tp, CensoredCount
+        )
+        assert not any(p.startswith("statistics.confusion") for p in note.suppressed)
+        assert DisclosureNote.model_validate_json(note.model_dump_json()) == note
+        assert isolated_sets(_release_sets(frame, controlled, note), M) == []
+
+
+@pytest.mark.parametrize(
+    ("design", "columns"),
+    [
+        (
+            "crossing",  # a 20-case unit, and shifts of 20 consecutive cases across it
+            {
+                "unit": _blocks(240, {"icu": (0, 20), "ward": (20, 240)}),
+                "shift": ["day" if i % 40 < 20 else "night" for i in range(240)],
+            },
+        ),
+        (
+            "nested",  # wards inside departments: north = A ∪ B, south = C ∪ D
+            {
+                "ward": _blocks(
+                    240, {"A": (0, 20), "B": (20, 80), "C": (80, 160), "D": (160, 240)}
+                ),
+                "department": _blocks(240, {"north": (0, 80), "south": (80, 240)}),
+            },
+        ),
+    ],
+)
+def test_attack_two_attributes_share_the_sites_partition_and_isolate_nothing(
+    design: str, columns: dict[str, list[str]]
+) -> None:
+    """Two attributes: their joint occupancy is not in the release, so the site keeps no own cut."""
+    frame = _cohort_frame(columns, 240)
+    attributes = tuple(columns)
+    plan = EvaluationPlan(
+        thresholds=(*_between_neighbouring_scores(frame, 30), 0.5),
+        histogram_edges=uniform_edges(10),
+        subgroups=attributes,
+    )
+    raw = _evaluate(frame, plan)
+    policy = SitePolicy(min_cell=M, allowed_subgroup_attributes=attributes)
+
+    for action in (SmallCellAction.SUPPRESS, SmallCellAction.MERGE):
+        controlled, note = apply_policy(raw, policy.model_copy(update={"small_cells": action}))
+
+        assert note.positive_cuts_withheld, design  # the design does split off small counts
+        assert all(note.cuts_withheld(a) == note.cuts_withheld() for a in attributes)
+        assert isolated_sets(_release_sets(frame, controlled, note), M) == []
+
+
+def test_attack_level_empty_on_one_side_of_a_site_only_cut_is_merged() -> None:
+    """ICU has no positive in [0.4, 0.5): a site-only 0.5 would give ward's 2 in [0.5, 0.6)."""
+    rows = [("icu", 1, s) for s in (0.52, 0.53, 0.54, 0.55, 0.56, 0.95, 0.96, 0.97, 0.98, 0.99)]
+    rows += [("ward", 1, s) for s in (0.57, 0.58, *(0.41 + 0.008 * i for i in range(10)))]
+    rows += [("ward", 1, 0.05 + 0.02 * i) for i in range(8)]
+    rows += [("icu", 0, 0.05 + 0.03 * i) for i in range(10)]
+    rows += [("ward", 0, 0.02 + 0.01 * i) for i in range(30)]
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"o{i}" for i in range(len(rows))],
+            "patient_id": [f"op{i}" for i in range(len(rows))],
+            "label": [r[1] for r in rows],
+            "score": [r[2] for r in rows],
+            "unit": [r[0] for r in rows],
+        }
+    )
+    plan = EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(10), subgroups=("unit",))
+    raw = _evaluate(frame, plan)
+
+    controlled, note = apply_policy(
+        raw, SitePolicy(min_cell=M, allowed_subgroup_attributes=("unit",))
+    )
+
+    assert 0.5 in note.positive_cuts_withheld  # ICU has no positive in [0.4, 0.5)
+    assert isolated_sets(_release_sets(frame, controlled, note), M) == []
