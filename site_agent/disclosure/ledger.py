@@ -32,7 +32,6 @@ from typing import IO, Any
 
 from pydantic import BaseModel, ConfigDict, Field, JsonValue, ValidationError
 
-from site_agent.contract.node_config import DEFAULT_LEDGER_FILE
 from site_agent.exceptions import LedgerError
 
 GENESIS_HASH = "0" * 64

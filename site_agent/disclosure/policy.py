@@ -35,8 +35,8 @@ from typing import Any
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from site_agent.contract.adaptation_release import ThresholdPerformance
-from site_agent.contract.protocol import Operation, UpdateNoise
 from site_agent.contract.node_config import DEFAULT_APPROVALS_FILE
+from site_agent.contract.protocol import Operation, UpdateNoise
 from site_agent.exceptions import InputError
 from site_agent.statistics.censored import Cell, CensoredCount, censor_pair
 from site_agent.statistics.summaries import ConfusionCounts
