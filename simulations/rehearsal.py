@@ -44,7 +44,7 @@ from site_agent.contract.protocol import (
     Operation,
     StudyProtocol,
 )
-from site_agent.contract.score_scales import logit_edges, quantile_edges
+from site_agent.contract.score_scales import logit_edges, nested_calibration_edges, quantile_edges
 from site_agent.disclosure.approvals import approve
 from site_agent.disclosure.policy import (
     DEFAULT_MIN_CELL,
@@ -141,7 +141,8 @@ def prepare_study(
         ),
         evaluation=EvaluationPlan(
             thresholds=DEFAULT_THRESHOLDS,
-            histogram_edges=histogram_edges or logit_edges(HISTOGRAM_BINS),
+            histogram_edges=(edges := histogram_edges or logit_edges(HISTOGRAM_BINS)),
+            calibration_edges=nested_calibration_edges(edges),
             subgroups=DEFAULT_SUBGROUPS,
         ),
         quorum=max(2, len(sites) // 2),

@@ -61,6 +61,12 @@ class EvaluationPlan(_Frozen):
         "(default: equal steps of log-odds, see site_agent.contract.score_scales).",
     )
     calibration_bins: int = Field(default=DEFAULT_CALIBRATION_BINS, ge=2, le=100)
+    calibration_edges: tuple[float, ...] | None = Field(
+        default=None,
+        description="Fixed calibration bin edges on [0, 1]; None: calibration_bins equal "
+        "bins. Edges that are also histogram edges add no cut to the release's score "
+        "partition (site_agent.disclosure.partition), so fewer cuts are withheld.",
+    )
     subgroups: tuple[str, ...] = Field(
         default=(), description="Case attribute columns to report subgroups by."
     )
@@ -74,16 +80,22 @@ class EvaluationPlan(_Frozen):
             raise ValueError("thresholds must lie in [0, 1]")
         return tuple(sorted(set(v)))
 
-    @field_validator("histogram_edges")
+    @field_validator("histogram_edges", "calibration_edges")
     @classmethod
-    def _edges_cover_unit_interval(cls, v: tuple[float, ...]) -> tuple[float, ...]:
+    def _edges_cover_unit_interval(cls, v: tuple[float, ...] | None) -> tuple[float, ...] | None:
+        if v is None:
+            return v
         if len(v) < 3:
-            raise ValueError("histogram needs at least two bins")
+            raise ValueError("bin edges need at least two bins")
         if v[0] != 0.0 or v[-1] != 1.0:
-            raise ValueError("histogram edges must start at 0 and end at 1")
+            raise ValueError("bin edges must start at 0 and end at 1")
         if any(b <= a for a, b in pairwise(v)):
-            raise ValueError("histogram edges must increase strictly")
+            raise ValueError("bin edges must increase strictly")
         return v
+
+    def calibration_bin_edges(self) -> tuple[float, ...]:
+        """Return the calibration bin edges: the fixed ones, else equal bins."""
+        return self.calibration_edges or uniform_edges(self.calibration_bins)
 
 
 class ModelReference(_Frozen):

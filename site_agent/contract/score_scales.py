@@ -99,3 +99,25 @@ def quantile_edges(scores: Sequence[float], bins: int, *, min_cell: int) -> tupl
     quantiles = np.quantile(values, np.arange(1, bins) / bins)
     inner = sorted({_rounded(float(q)) for q in quantiles} - {0.0, 1.0})
     return (0.0, *inner, 1.0)
+
+
+def nested_calibration_edges(
+    histogram_edges: Sequence[float], bins: int = 10, limit: float = 4.0
+) -> tuple[float, ...]:
+    """Return calibration edges chosen among the histogram's own inner edges.
+
+    About ``bins`` bins, with inner edges spread evenly among the histogram edges whose
+    log-odds lie within ``±limit`` (where calibration is read; beyond it the outer bins
+    hold the rest). Every calibration edge is a histogram edge, so calibration adds no cut
+    to the score partition a release reports (common practice in disclosure control:
+    nested tables cannot be differenced into new cells).
+    """
+    inner = [e for e in histogram_edges[1:-1] if abs(math.log(e / (1.0 - e))) <= limit]
+    if len(inner) < bins - 1:
+        chosen = inner
+    else:
+        step = len(inner) / (bins - 1)
+        chosen = sorted(
+            {inner[min(len(inner) - 1, round(step * (k + 0.5)))] for k in range(bins - 1)}
+        )
+    return (0.0, *chosen, 1.0)

@@ -34,7 +34,7 @@ import numpy as np
 import numpy.typing as npt
 from pydantic import BaseModel, ConfigDict, Field, NonNegativeInt, model_validator
 
-from site_agent.contract.protocol import EvaluationPlan, uniform_edges
+from site_agent.contract.protocol import EvaluationPlan
 from site_agent.data.predictions import MISSING, Predictions
 from site_agent.exceptions import InputError
 from site_agent.statistics.censored import Cell, CensoredCount, is_censored, merge_pair
@@ -496,16 +496,17 @@ def compute_statistics(
         negative=_bin_counts(hist_index[negative], bins),
         all=_bin_counts(hist_index, bins),
     )
-    cal_edges = uniform_edges(plan.calibration_bins)
+    cal_edges = plan.calibration_bin_edges()
+    cal_bins = len(cal_edges) - 1
     cal_index = _bin_index(predictions.score[labelled], cal_edges)
     scores = predictions.score[labelled]
     labels = predictions.label[labelled].astype(np.float64)
     calibration = CalibrationBins(
         edges=cal_edges,
-        count=_bin_counts(cal_index, plan.calibration_bins),
-        score_sum=_bin_sums(cal_index, scores, plan.calibration_bins),
-        label_sum=tuple(round(s) for s in _bin_sums(cal_index, labels, plan.calibration_bins)),
-        squared_error_sum=_bin_sums(cal_index, (scores - labels) ** 2, plan.calibration_bins),
+        count=_bin_counts(cal_index, cal_bins),
+        score_sum=_bin_sums(cal_index, scores, cal_bins),
+        label_sum=tuple(round(s) for s in _bin_sums(cal_index, labels, cal_bins)),
+        squared_error_sum=_bin_sums(cal_index, (scores - labels) ** 2, cal_bins),
     )
     return SufficientStatistics(
         n_observations=len(predictions),
