@@ -118,6 +118,11 @@ def censored_text(row: MetricRow) -> str:
     """
     low, high = row.estimate_low, row.estimate_high
     assert low is not None and high is not None  # the caller checked
+    if low <= 0.0 and high >= 1.0:  # a bound that bounds nothing is not shown as a number
+        return (
+            f'{DASH} <span class="reason">not released: site policy (the cells at this '
+            "threshold are below the site's minimum cell size)</span>"
+        )
     ci = interval_text(row.metric, row.lower, row.upper)
     ci_html = f' <span class="ci">({ci})</span>' if ci else ""
     return (
