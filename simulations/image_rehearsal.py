@@ -29,13 +29,11 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from coordinator.pooling.assemble import build_results
 from coordinator.pooling.sites import SiteInfo
-from coordinator.report.exports import write_exports
-from coordinator.report.study_report import render_report
 from coordinator.runs.engines import Engine, run_study
 from simulations.image_shifts import ImageShift, apply_shift
 from simulations.phantoms import phantom_set
 from simulations.references import with_reference_lines
-from simulations.rehearsal import REPORT_FILE, RESULTS_FILE, PreparedStudy, RehearsalOutput
+from simulations.rehearsal import PreparedStudy, RehearsalOutput, write_outputs
 from site_agent.contract.protocol import (
     AdaptationPlan,
     EvaluationPlan,
@@ -255,18 +253,7 @@ def rehearse_images(
         results = with_reference_lines(
             results, protocol, outcome.fine_tuning, bundle_path, settings
         )
-    results_path = out / RESULTS_FILE
-    results.write_json(results_path)
-    exports = tuple(write_exports(results, out))
-    report_path = render_report(results, out / REPORT_FILE)
-    return RehearsalOutput(
-        results=results,
-        directory=out,
-        results_path=results_path,
-        report_path=report_path,
-        exports=exports,
-        seconds=time.perf_counter() - started,
-    )
+    return write_outputs(results, out, started)
 
 
 def prepare_image_study(

@@ -89,6 +89,22 @@ class RehearsalOutput:
     seconds: float
 
 
+def write_outputs(results: StudyResults, out: Path, started: float) -> RehearsalOutput:
+    """Write results.json, the CSV exports and report.html; say where they are."""
+    results_path = out / RESULTS_FILE
+    results.write_json(results_path)
+    exports = tuple(write_exports(results, out))
+    report_path = render_report(results, out / REPORT_FILE)
+    return RehearsalOutput(
+        results=results,
+        directory=out,
+        results_path=results_path,
+        report_path=report_path,
+        exports=exports,
+        seconds=time.perf_counter() - started,
+    )
+
+
 @dataclass(frozen=True, slots=True)
 class PreparedStudy:
     """A rehearsal laid out on disk, ready for an engine to run."""
@@ -232,18 +248,7 @@ def rehearse(
     truth = cohort_truth(results, bundle_path, protocol, settings)
     if truth is not None:
         results = results.model_copy(update={"simulation_checks": [truth]})
-    results_path = out / RESULTS_FILE
-    results.write_json(results_path)
-    exports = tuple(write_exports(results, out))
-    report_path = render_report(results, out / REPORT_FILE)
-    return RehearsalOutput(
-        results=results,
-        directory=out,
-        results_path=results_path,
-        report_path=report_path,
-        exports=exports,
-        seconds=time.perf_counter() - started,
-    )
+    return write_outputs(results, out, started)
 
 
 def _development_quantile_edges(

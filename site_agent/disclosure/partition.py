@@ -84,7 +84,6 @@ from __future__ import annotations
 import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -519,17 +518,7 @@ def _calibration(
         return c.coarsened((0.0, *(e for e in c.edges[1:-1] if e in both), 1.0))
     gone = _next_to_removed(c.edges, both)
     out.suppressed.extend(f"{path}[{i}]" for i in sorted(gone))
-
-    def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
-        return tuple(type(v)(0) if i in gone else v for i, v in enumerate(values))
-
-    return CalibrationBins(
-        edges=c.edges,
-        count=keep(c.count),
-        score_sum=keep(c.score_sum),
-        label_sum=keep(c.label_sum),
-        squared_error_sum=keep(c.squared_error_sum),
-    )
+    return c.without_bins(gone)
 
 
 def control_agreement(

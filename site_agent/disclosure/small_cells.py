@@ -63,7 +63,6 @@ from __future__ import annotations
 
 import itertools
 from collections.abc import Sequence
-from typing import Any
 
 from pydantic import BaseModel, ConfigDict
 
@@ -448,17 +447,7 @@ def _calibration(
     primary = {i for i in range(len(c.count)) if not all(_ok(r[i], m) for r in rows)}
     small = _with_complements(rows, primary, m)
     note.suppressed.extend(f"{path}[{i}]" for i in sorted(small))
-
-    def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
-        return tuple(type(v)(0) if i in small else v for i, v in enumerate(values))
-
-    return CalibrationBins(
-        edges=c.edges,
-        count=keep(c.count),
-        score_sum=keep(c.score_sum),
-        label_sum=keep(c.label_sum),
-        squared_error_sum=keep(c.squared_error_sum),
-    )
+    return c.without_bins(small)
 
 
 def _attribute_counts(

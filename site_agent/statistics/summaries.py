@@ -26,9 +26,9 @@ Conventions
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Set
 from itertools import pairwise
-from typing import Literal, TypeVar
+from typing import Any, Literal, TypeVar
 
 import numpy as np
 import numpy.typing as npt
@@ -299,6 +299,20 @@ class CalibrationBins(_Stat):
             score_sum=_regroup(self.score_sum, groups),
             label_sum=_regroup(self.label_sum, groups),
             squared_error_sum=_regroup(self.squared_error_sum, groups),
+        )
+
+    def without_bins(self, bins: Set[int]) -> CalibrationBins:
+        """Return the sums with every bin in ``bins`` suppressed (its count and sums 0)."""
+
+        def keep(values: tuple[Any, ...]) -> tuple[Any, ...]:
+            return tuple(type(v)(0) if i in bins else v for i, v in enumerate(values))
+
+        return CalibrationBins(
+            edges=self.edges,
+            count=keep(self.count),
+            score_sum=keep(self.score_sum),
+            label_sum=keep(self.label_sum),
+            squared_error_sum=keep(self.squared_error_sum),
         )
 
     def merge(self, other: CalibrationBins) -> CalibrationBins:
