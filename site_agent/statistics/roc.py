@@ -1,5 +1,8 @@
 """ROC analysis: the area under the ROC curve, its variance, and ROC curves.
 
+(Over 500 lines for a reason: DeLong, Obuchowski, the paired and batched forms and the
+curve from histograms share the placement values and tie handling written once here.)
+
 Scores are "higher means more likely positive"; labels are 0 (negative) or 1 (positive).
 A positive–negative pair counts 1 when the positive scores higher, 1/2 when tied, 0
 otherwise (the Mann–Whitney kernel ψ); the AUC is the mean of ψ over all pairs.

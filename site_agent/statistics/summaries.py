@@ -1,5 +1,8 @@
 """Mergeable sufficient statistics: counts from which every pooled metric is derived.
 
+(Over 500 lines for a reason: the confusion, histogram, calibration and agreement summaries
+share one merge and re-binning algebra, and the release schema takes them as one model.)
+
 A site computes these from its predictions table; the coordinator adds them up across
 sites. Every model here holds counts, sums and bin edges only, never a per-case value,
 and every list is as long as a set of bins, thresholds or categories fixed by the plan.
