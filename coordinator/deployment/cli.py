@@ -123,6 +123,7 @@ def admit_command(
     except SitepoolError as exc:
         _fail(exc)
     typer.echo(f"admitted {admitted.name}: key {admitted.fingerprint}, node {admitted.node_id}")
+    typer.echo(RESEARCH_NOTICE)
 
 
 @coordinator_app.command("sites", help="List admitted sites and whether they are connected.")
@@ -154,6 +155,7 @@ def remove_command(
     except SitepoolError as exc:
         _fail(exc)
     typer.echo(f"removed {removed.name} (key {removed.fingerprint})")
+    typer.echo(RESEARCH_NOTICE)
 
 
 @coordinator_app.command(
