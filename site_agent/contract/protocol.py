@@ -222,11 +222,14 @@ class StudyProtocol(_Frozen):
     def canonical_json(self) -> str:
         """Return the protocol as JSON with sorted keys and no whitespace (what is hashed).
 
-        A protocol without monitoring (or adaptation) leaves that key out, and a monitoring
-        plan leaves out a label horizon at its default, so protocols written before these
-        fields existed keep their hash (and their sites' approvals).
+        A protocol without monitoring (or adaptation) leaves that key out, a monitoring plan
+        leaves out a label horizon at its default, and an evaluation plan leaves out
+        calibration edges it does not fix, so protocols written before these fields existed
+        keep their hash (and their sites' approvals).
         """
         data = self.model_dump(mode="json")
+        if self.evaluation.calibration_edges is None:
+            del data["evaluation"]["calibration_edges"]
         if self.monitoring is None:
             del data["monitoring"]
         elif self.monitoring.label_horizon_months == DEFAULT_LABEL_HORIZON_MONTHS:
