@@ -140,9 +140,27 @@ def sites_frame(results: StudyResults) -> pd.DataFrame:
 
 
 def _estimate_columns(prefix: str, row: MetricRow | None) -> dict[str, float | None]:
+    """Estimate and interval; for a metric on a censored cell, its range (``_low``, ``_high``).
+
+    A censored estimate has no point value (empty ``prefix`` column); the range of values
+    the released counts allow is in ``{prefix}_low`` and ``{prefix}_high`` and the interval
+    columns hold the hull of the intervals over that range.
+    """
     if row is None:
-        return {prefix: None, f"{prefix}_lower": None, f"{prefix}_upper": None}
-    return {prefix: row.estimate, f"{prefix}_lower": row.lower, f"{prefix}_upper": row.upper}
+        return {
+            prefix: None,
+            f"{prefix}_lower": None,
+            f"{prefix}_upper": None,
+            f"{prefix}_low": None,
+            f"{prefix}_high": None,
+        }
+    return {
+        prefix: row.estimate,
+        f"{prefix}_lower": row.lower,
+        f"{prefix}_upper": row.upper,
+        f"{prefix}_low": row.estimate_low,
+        f"{prefix}_high": row.estimate_high,
+    }
 
 
 def write_exports(results: StudyResults, directory: Path) -> list[Path]:

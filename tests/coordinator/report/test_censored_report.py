@@ -168,3 +168,30 @@ def test_findings_list_opens_with_the_development_auc_of_scikit_learn() -> None:
     assert lines[0].label == f"Development site ({SITES[0]})"
     assert lines[0].text.startswith(f"AUC {roc_auc_score(dev['label'], dev['score']):.3f} (")
     assert lines[1].label.startswith("Worst external site")
+
+
+def test_sites_csv_gives_the_range_of_a_censored_sensitivity_not_a_number() -> None:
+    """sites.csv: a censored sensitivity has no value, its range in _low/_high holds the truth.
+
+    The unsuppressed sensitivity is scikit-learn's recall_score on the site's own table.
+    """
+    from coordinator.report.exports import sites_frame
+
+    results = _results()
+    frame = sites_frame(results).set_index("site")
+    censored = [
+        t.site
+        for t in results.two_by_two
+        if t.site != POOLED and t.threshold == THRESHOLD and isinstance(t.tp, CensoredCount)
+    ]
+    exact = [s for s in SITES if s not in censored]
+    tables = _tables()
+    assert censored  # the invented split censors tp at 0.3 at every site
+
+    for site in censored:
+        truth = recall_score(tables[site]["label"], tables[site]["score"] >= THRESHOLD)
+        assert pd.isna(frame.loc[site, "sensitivity"])
+        assert frame.loc[site, "sensitivity_low"] <= truth <= frame.loc[site, "sensitivity_high"]
+    for site in exact:
+        assert pd.isna(frame.loc[site, "sensitivity_low"])
+        assert not pd.isna(frame.loc[site, "sensitivity"])
