@@ -26,12 +26,11 @@ DEFAULT_POLL_S = 0.1
 """Seconds between asks for replies while a wave is out."""
 
 
-class QuickPollGrid(Grid):
-    """``inner`` with a ``send_and_receive`` that polls every ``poll_s`` seconds."""
+class DelegatingGrid(Grid):
+    """A Grid that hands every call to ``inner``; subclasses replace what they change."""
 
-    def __init__(self, inner: Grid, *, poll_s: float = DEFAULT_POLL_S) -> None:
+    def __init__(self, inner: Grid) -> None:
         self._inner = inner
-        self._poll_s = poll_s
 
     def set_run(self, run: Run) -> None:
         """Set the run of the wrapped Grid."""
@@ -72,6 +71,20 @@ class QuickPollGrid(Grid):
     def pull_messages(self, message_ids: Iterable[str]) -> Iterable[Message]:
         """Pull through the wrapped Grid."""
         return self._inner.pull_messages(message_ids)
+
+    def send_and_receive(
+        self, messages: Iterable[Message], *, timeout: float | None = None
+    ) -> Iterable[Message]:
+        """Send through the wrapped Grid."""
+        return self._inner.send_and_receive(messages, timeout=timeout)
+
+
+class QuickPollGrid(DelegatingGrid):
+    """``inner`` with a ``send_and_receive`` that polls every ``poll_s`` seconds."""
+
+    def __init__(self, inner: Grid, *, poll_s: float = DEFAULT_POLL_S) -> None:
+        super().__init__(inner)
+        self._poll_s = poll_s
 
     def send_and_receive(
         self, messages: Iterable[Message], *, timeout: float | None = None

@@ -14,13 +14,13 @@ from collections.abc import Callable, Iterable, Sequence
 from pathlib import Path
 
 import pytest
-from flwr.app import Context, Message, RecordDict
+from flwr.app import Context
 from flwr.proto.node_pb2 import NodeInfo
 from flwr.serverapp import Grid, ServerApp
-from flwr.supercore.run import Run
 
 from coordinator.pooling.release_files import FILE_NODE_ID, FileReleases, read_release_folder
 from coordinator.runs.inprocess import FIRST_NODE_ID, run_inprocess
+from coordinator.runs.quick_grid import DelegatingGrid
 from coordinator.runs.rounds import SiteDisclosure, StudyOutcome
 from coordinator.runs.study_state import SqliteStudyState, run_resumable_study_rounds
 from site_agent import client_app
@@ -35,46 +35,15 @@ from site_agent.exceptions import DeploymentError
 from site_agent.service import SiteSettings
 
 
-class _NamedGrid(Grid):
+class _NamedGrid(DelegatingGrid):
     """Delegate to an in-process grid; name each node as SuperNode authentication does."""
 
     def __init__(self, inner: Grid, names: dict[int, str]) -> None:
-        self._inner = inner
+        super().__init__(inner)
         self._names = names
-
-    def set_run(self, run: Run) -> None:
-        self._inner.set_run(run)
-
-    @property
-    def run(self) -> Run:
-        return self._inner.run
-
-    def create_message(
-        self,
-        content: RecordDict,
-        message_type: str,
-        dst_node_id: int,
-        group_id: str,
-        ttl: float | None = None,
-    ) -> Message:
-        return self._inner.create_message(content, message_type, dst_node_id, group_id, ttl)
-
-    def get_node_ids(self) -> Iterable[int]:
-        return self._inner.get_node_ids()
 
     def get_nodes(self) -> Iterable[NodeInfo]:
         return [NodeInfo(node_id=n, name=self._names[n]) for n in self._inner.get_node_ids()]
-
-    def push_messages(self, messages: Iterable[Message]) -> Iterable[str]:
-        return self._inner.push_messages(messages)
-
-    def pull_messages(self, message_ids: Iterable[str]) -> Iterable[Message]:
-        return self._inner.pull_messages(message_ids)
-
-    def send_and_receive(
-        self, messages: Iterable[Message], *, timeout: float | None = None
-    ) -> Iterable[Message]:
-        return self._inner.send_and_receive(messages, timeout=timeout)
 
 
 def _resumable(
