@@ -312,6 +312,9 @@ def test_noised_release_withholds_exact_estimates_and_states_its_noise(tmp_path:
     """Under DP, exact AUCs are withheld and the note gives ε and b = Δ/ε."""
     privacy = PrivacySettings(enabled=True, study_epsilon=1.0, release_epsilon=0.5)
     site = _Site(tmp_path / "fernbrook", _policy(privacy=privacy))
+    # 2,000 cases: with noise scale 20, a noisy class total below the minimum cell (which
+    # would refuse the release) has probability about e^-40; with 120 cases it was ~6 %.
+    _write_table(site.data, n_cases=2000)
     protocol = _protocol(histogram_edges=uniform_edges(10))
     release = _direct_release(site, protocol)
 
