@@ -204,6 +204,18 @@ def sizes_command(
         float, typer.Option("--slope-width", help="Calibration-slope interval width.")
     ] = 0.2,
     c_width: Annotated[float, typer.Option("--c-width", help="C-statistic interval width.")] = 0.1,
+    lp_mean: Annotated[
+        float | None,
+        typer.Option(
+            "--lp-mean",
+            help="Mean of the model's linear predictor (log-odds) in the validation "
+            "population, if published; with --lp-sd. Default: the normal linear predictor "
+            "with the anticipated prevalence and AUC.",
+        ),
+    ] = None,
+    lp_sd: Annotated[
+        float | None, typer.Option("--lp-sd", help="SD of that linear predictor; with --lp-mean.")
+    ] = None,
 ) -> None:
     """Print the analytic sample sizes."""
     from coordinator.planning.accuracy_precision import (
@@ -231,6 +243,8 @@ def sizes_command(
             oe_ci_width=oe_width,
             slope_ci_width=slope_width,
             c_ci_width=c_width,
+            lp_mean=lp_mean,
+            lp_sd=lp_sd,
         )
     except SitepoolError as exc:
         _fail(str(exc))

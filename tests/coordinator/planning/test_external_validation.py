@@ -48,11 +48,12 @@ def test_oe_criterion_matches_the_papers_standard_error() -> None:
 
 def test_calibration_slope_agrees_with_the_sampsizeval_readme_example() -> None:
     """P 0.1, C 0.75, SE of the slope 0.1: the sampsizeval README reports 1536 cases."""
-    # Pavlou M et al. (2021) Stat Methods Med Res 30(7):1545-1561, as implemented in the
-    # R package sampsizeval 1.0.0 (README example: sampsizeval(p=0.1, c=0.75, se_c=0.025,
-    # se_cs=0.1, se_cl=0.1) recommends 1536, driven by the slope). Their LP distribution
-    # comes from approximate equations (7)-(8), ours from exact root finding, so the two
-    # agree to a few percent rather than exactly.
+    # Pavlou M et al. (2021) Stat Methods Med Res, doi:10.1177/09622802211007522, as
+    # implemented in the R package sampsizeval 1.0.0 (README example, read on CRAN:
+    # sampsizeval(p=0.1, c=0.75, se_c=0.025, se_cs=0.1, se_cl=0.1) recommends 1536,
+    # driven by the slope). Their LP distribution comes from approximate equations
+    # (7)-(8), ours from exact root finding, so the two agree to a few percent rather
+    # than exactly.
     result = cases_for_calibration_slope(0.1, 0.75, ci_width=2 * Z * 0.1)
     assert result.n_total == pytest.approx(1536, rel=0.03)
 
