@@ -14,8 +14,20 @@ from site_agent.exceptions import InputError
 def test_sensitivity_cases_reproduce_the_textbook_table_value() -> None:
     """Se 0.90, half-width 0.05, prevalence 0.10 needs 1383 cases."""
     # Hajian-Tilaki K (2014), J Biomed Inform 48:193-204, Table 1 (Buderer's formula);
-    # 1383 recalled from memory. By hand: 1.96² · 0.9 · 0.1 / 0.05² / 0.1 = 1382.9.
+    # 1383 recalled from memory: the table was not reachable (the same paper's worked
+    # example on p 195 is confirmed through epiR, test above). By hand:
+    # 1.96² · 0.9 · 0.1 / 0.05² / 0.1 = 1382.9.
     assert cases_for_sensitivity(0.90, 0.10, 0.05).n_total == 1383
+
+
+def test_sensitivity_cases_reproduce_the_epir_worked_example() -> None:
+    """Se 0.80, half-width 0.07, prevalence 0.10: 1255 subjects."""
+    # epiR (Stevenson), man/epi.ssdxsesp.Rd, EXAMPLE 1 "from Hajian-Tilaki 2014, p 195":
+    # epi.ssdxsesp(se = 0.80, sp = NA, Py = 0.10, epsilon = 0.07, error = "absolute")
+    # "A total of 1255 subjects need to be enrolled" (Buderer 1996 formula).
+    result = cases_for_sensitivity(0.80, 0.10, 0.07)
+    assert result.n_total == 1255
+    assert result.achieved <= 0.07
 
 
 def test_specificity_cases_divide_by_the_non_diseased_share() -> None:

@@ -20,8 +20,25 @@ from site_agent.statistics.roc import hanley_mcneil_se
 def test_auc_variance_reproduces_the_published_ct_example() -> None:
     """Hanley & McNeil (1982): AUC 0.893 with 51 diseased and 58 normal cases has SE 0.032."""
     # Radiology 143:29-36, the CT rating example; 0.032 recalled from memory (rounded),
-    # hence the tolerance of 0.001.
+    # hence the tolerance of 0.001. Not confirmed from a reachable source: the paper's
+    # text was not found; the ratings table (58 normal, 51 abnormal, area 0.893) appears
+    # in third-party code and pages (one swaps the two groups), none printing the SE.
+    # The formula itself is confirmed against auctestr's documented output (test
+    # below). With 51 abnormal and 58 normal the exponential-model SE is 0.0325.
     assert math.sqrt(auc_variance(0.893, 51, 58)) == pytest.approx(0.032, abs=0.001)
+
+
+@pytest.mark.parametrize(
+    ("auc", "n_pos", "n_neg", "published"),
+    [(0.75, 20, 200, 0.06498283), (0.75, 110, 110, 0.03282048), (0.75, 20, 20, 0.07789072)],
+)
+def test_auc_standard_error_reproduces_a_documented_package_example(
+    auc: float, n_pos: int, n_neg: int, published: float
+) -> None:
+    """The Hanley-McNeil SE agrees with the R package auctestr's documented example output."""
+    # auctestr 1.0.0, se_auc(auc, n_p, n_n) (Hanley & McNeil 1982 equation 1), example
+    # output printed on its rdrr.io help page; published to 8 decimals, hence abs=5e-9.
+    assert math.sqrt(auc_variance(auc, n_pos, n_neg)) == pytest.approx(published, abs=5e-9)
 
 
 def test_auc_variance_agrees_with_the_site_agent_formula() -> None:
