@@ -1,9 +1,12 @@
 """What a planning grid says, as a terminal table, CSV, JSON and a small HTML page.
 
-The page holds one figure per measure (pooled interval width, prediction interval
-width, power, detection delay) against cases per site, one line per number of sites,
-with the Monte Carlo interval as error bars and the target as a dashed line; then the
-table of every design with its verdicts, and the research-tool caution at top and
+The page opens with the research-tool caution and the verdict (the cheapest design
+meeting every target, highlighted in the table), then the targets in words and the
+settings; one figure per measure (pooled interval width, prediction interval width,
+power, detection delay) against cases per site, one line per number of sites, with the
+Monte Carlo interval as error bars and the target as a dashed line; then the table of
+every design, each value coloured by its verdict against its target (met, missed, or
+undecided when the Monte Carlo interval straddles it), and the caution again at the
 bottom. A value the simulation cannot know is written as unknown or as a bound: a
 delay with replicates that never alarmed is "≥ x", a prediction interval with two
 sites is "n/a".
@@ -32,6 +35,12 @@ MEASURES: tuple[tuple[str, str, str | None], ...] = (
     ("power", "Power to flag a new site's AUC drop", "min_power"),
     ("detection_delay", "Drift monitor: windows until alarm", "max_delay"),
 )
+TARGET_WORDS: dict[str, str] = {
+    "max_ci_width": "pooled AUC interval at most {v:g} wide",
+    "max_prediction_width": "prediction interval at most {v:g} wide",
+    "min_power": "power to flag the drop at least {v:g}",
+    "max_delay": "drift alarm within {v:g} windows",
+}
 _CSV_COLUMNS = (
     "sites",
     "cases_per_site",
@@ -50,29 +59,40 @@ def format_value(value: McValue, digits: int = 3) -> str:
     return f"{value.estimate:.{digits}g} ({value.lower:.{digits}g}–{value.upper:.{digits}g})"
 
 
-def summary_lines(result: PlanResult) -> list[str]:
-    """Return the plain-language verdict: which design meets the targets, if any."""
+def summary_lines(result: PlanResult) -> tuple[str, str]:
+    """Return the settings in one line and the verdict: which design meets the targets."""
     s = result.settings
-    lines = [
+    settings = (
         f"{len(result.cells)} designs x {s.replicates} replicates, seed {s.seed}; "
-        f"AUC {s.auc:g}, prevalence {s.prevalence:g}, tau {s.tau:.3g} ({s.tau_source}), "
-        f"drop {s.drop:g}, {s.window_cases} cases per monitoring window."
-    ]
+        f"AUC {s.auc:g}, prevalence {s.prevalence:g}, between-site SD of the logit AUC "
+        f"(tau) {s.tau:.3g} ({s.tau_source}), AUC drop to flag {s.drop:g}, "
+        f"{s.window_cases} cases per monitoring window."
+    )
     asked = [name for name, value in result.targets.model_dump().items() if value is not None]
     if not asked:
-        lines.append("No targets given: the table shows each design; none is recommended.")
+        verdict = "No targets given: the table shows each design; none is recommended."
     elif result.recommended is None:
-        lines.append(
+        verdict = (
             "No design in the grid meets every target with its whole Monte Carlo interval; "
             "widen the grid or relax a target."
         )
     else:
         k, n = result.recommended
-        lines.append(
+        verdict = (
             f"Cheapest design meeting every target: {k} sites x {n} cases per site "
             f"({k * n} cases in all)."
         )
-    return lines
+    return settings, verdict
+
+
+def targets_in_words(result: PlanResult) -> str:
+    """Return the targets asked for, in words (``"none given"`` when there are none)."""
+    asked = [
+        TARGET_WORDS[name].format(v=value)
+        for name, value in result.targets.model_dump().items()
+        if value is not None
+    ]
+    return "; ".join(asked) if asked else "none given"
 
 
 def write_csv(result: PlanResult, path: Path) -> None:
@@ -135,37 +155,45 @@ def render_html(result: PlanResult) -> str:
         )
     )
     rows = "\n".join(_row(c, result.recommended) for c in result.cells)
-    targets = ", ".join(
-        f"{k.replace('_', ' ')} {v:g}" for k, v in result.targets.model_dump().items() if v
-    )
     notes = "".join(f"<li>{e(n)}</li>" for n in result.notes)
-    summary = "".join(f"<p>{e(line)}</p>" for line in summary_lines(result))
+    settings_line, verdict = summary_lines(result)
+    highlighted = (
+        " It is the highlighted row of the table." if result.recommended is not None else ""
+    )
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
 <title>sitepool consortium plan</title>
 <style>
 body {{ font-family: sans-serif; margin: 1.5em auto; max-width: 1100px; color: #222; }}
 .notice {{ border: 2px solid #b00; background: #fff4f4; padding: .6em 1em; font-weight: bold; }}
+.verdict {{ font-size: 115%; font-weight: bold; }}
 table {{ border-collapse: collapse; margin: .6em 0; font-size: 85%; }}
 th, td {{ border: 1px solid #ccc; padding: .25em .5em; text-align: center; }}
 tr.best td {{ background: #e3f1e0; font-weight: bold; }}
-td.yes {{ color: #1a6b1a; }} td.no {{ color: #a00; }}
+td.yes, span.yes {{ color: #1a6b1a; }} td.no, span.no {{ color: #a00; }}
+td.uncertain, span.uncertain {{ color: #8a5a00; font-style: italic; }}
 .figures {{ display: grid; grid-template-columns: 1fr 1fr; gap: 1em; }}
 figure {{ margin: 0; }} figure svg {{ width: 100%; height: auto; }}
 </style></head><body>
 <p class="notice" id="notice-top">{e(RESEARCH_NOTICE)}</p>
 <h1>Consortium plan: sites and cases per site</h1>
-{summary}
-<p>Targets: {e(targets) if targets else "none given"}. A target is met only when the whole
-95% Monte Carlo interval meets it.</p>
+<p class="verdict" id="verdict">{e(verdict)}{highlighted}</p>
+<p>Targets: {e(targets_in_words(result))}. A target is met only when the whole 95% Monte
+Carlo interval meets it; the dashed line in a figure is its target.</p>
+<p>{e(settings_line)}</p>
 <div class="figures">
 {figures}
 </div>
 <h2>Every design</h2>
 <p>Each value is the mean over replicates with its 95% Monte Carlo interval (Wilson for
 power). "≥" marks a lower bound: some replicates raised no alarm within
-{s.horizon_windows} windows. "n/a": not defined (a prediction interval needs 3 sites).</p>
-<table><tr>{head}</tr>
+{s.horizon_windows} windows. "n/a": not defined (a prediction interval needs 3 sites).
+Against a target, a value is <span class="yes">green</span> when its whole Monte Carlo
+interval meets the target, <span class="no">red</span> when the whole interval misses it,
+and <span class="uncertain">amber</span> when the interval straddles the target (more
+replicates would be needed to say); "meets targets" is yes only when every target is
+green.</p>
+<table id="designs"><tr>{head}</tr>
 {rows}
 </table>
 <h2>How these numbers were made</h2>
