@@ -58,7 +58,7 @@ from site_agent.training.model_bundle import save_bundle
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"
 DEFAULT_SUBGROUPS = ("scanner_vendor",)
-HISTOGRAM_BINS = 80
+HISTOGRAM_BINS = 160
 """Fewer bins than the smallest site has cases (86 held-out cases at the development site):
 a site refuses a histogram with more bins than cases. The bins are equal steps of log-odds
 (:func:`~site_agent.contract.score_scales.logit_edges`), so saturated scores stay apart."""

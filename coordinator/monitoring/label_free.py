@@ -68,10 +68,11 @@ def capacity(release: SiteRelease) -> list[float]:
     """
     stats = release.statistics
     h = stats.histogram
-    pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
+    positive, negative = h.class_on_edges("positive"), h.class_on_edges("negative")
+    pending = [a - p - n for a, p, n in zip(h.all, positive, negative, strict=True)]
     rows = (
-        (h.positive, stats.n_positive - sum(h.positive)),
-        (h.negative, stats.n_negative - sum(h.negative)),
+        (positive, stats.n_positive - sum(positive)),
+        (negative, stats.n_negative - sum(negative)),
         (pending, stats.n_pending - sum(pending)),
     )
     return [
@@ -102,9 +103,9 @@ def dispersion(baseline: list[SiteRelease], base_hist: ScoreHistogram | None) ->
     bands = _bands(base_hist.all, PSI_BAND_SHARE)
     windows, totals = [], []
     for release in baseline:
-        if tuple(release.statistics.histogram.edges) != tuple(base_hist.edges):
-            continue  # a window on other edges cannot be put on the baseline's bands
-        counts = release.statistics.histogram.all
+        # The merged baseline keeps the edges every baseline window kept (sites merge small
+        # bins), so each window re-bins onto it exactly.
+        counts = release.statistics.histogram.coarsened(base_hist.edges).all
         windows.append([sum(counts[a:b]) for a, b in bands])
         totals.append(max(release.statistics.n_observations, sum(counts)))
     return baseline_dispersion(windows, totals)

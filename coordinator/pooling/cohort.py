@@ -11,13 +11,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from functools import reduce
 
-import numpy as np
-
 from coordinator.pooling.sites import POOLED, estimate_row
 from coordinator.pooling.study_results import CurvePoints, MetricRow
 from site_agent.contract.release import SiteRelease, SubgroupRelease
 from site_agent.exceptions import InputError
-from site_agent.statistics.binned_auc import clamped_logit, interpolated_auc
+from site_agent.statistics.binned_auc import interpolated_auc, interpolated_roc, shared_shape
 from site_agent.statistics.estimates import two_sided_z
 from site_agent.statistics.metrics import ProportionMetrics, summarize
 from site_agent.statistics.roc import hanley_mcneil_se
@@ -49,12 +47,13 @@ def cohort_auc(
         AUC = Σ_ij P_i N_j AUC_ij / (P N)
 
     Within a site (``i = j``) ``AUC_ii`` is the site's exact AUC, released as a scalar.
-    Across sites it comes from the two sites' score histograms, compared bin against bin
-    with cases spread evenly in log-odds within a bin
-    (:func:`site_agent.statistics.binned_auc.interpolated_auc`; sites may release
-    different bins once disclosure control merges small ones), and only those pairs add
-    to the bound, which is the largest distance from the estimate to any AUC the released
-    bins allow. A site
+    Across sites it comes from the two sites' score histograms of each class, compared
+    bin against bin (:func:`site_agent.statistics.binned_auc.interpolated_auc`; sites and
+    classes keep different bins once disclosure control merges small ones), with each
+    site's bin spread by the shape all sites' bins of that class give together
+    (:func:`~site_agent.statistics.binned_auc.shared_shape`). Only those pairs add to the
+    bound, which is the largest distance from the estimate to any AUC the released bins
+    allow. A site
     whose exact AUC is withheld (differential privacy) uses its histogram for its own
     pairs too. The interval is normal with the Hanley & McNeil (1982) standard error,
     which needs only the AUC and the class sizes.
@@ -66,11 +65,14 @@ def cohort_auc(
     hists = [h for h, _ in parts]
     pos = [sum(h.positive) for h in hists]
     neg = [sum(h.negative) for h in hists]
+    positives = [h.class_histogram("positive") for h in hists]
+    negatives = [h.class_histogram("negative") for h in hists]
+    spread_pos, spread_neg = shared_shape(positives), shared_shape(negatives)
     big_p, big_n = sum(pos), sum(neg)
     reason = None if big_p and big_n else "the pooled cases lack a class: AUC undefined"
     value = bound = 0.0
-    for i, (hi, exact_i) in enumerate(parts):
-        for j, hj in enumerate(hists):
+    for i, (_, exact_i) in enumerate(parts):
+        for j in range(len(parts)):
             if not pos[i] or not neg[j] or reason:
                 continue
             weight = pos[i] * neg[j] / (big_p * big_n)
@@ -78,7 +80,9 @@ def cohort_auc(
             if exact is not None:
                 value += weight * exact
                 continue
-            pair = interpolated_auc([(hi.edges, hi.positive)], [(hj.edges, hj.negative)])
+            pair = interpolated_auc(
+                [positives[i]], [negatives[j]], spread=([spread_pos[i]], [spread_neg[j]])
+            )
             value += weight * pair.auc
             bound += weight * pair.bound
     nan = float("nan")
@@ -124,28 +128,22 @@ def cohort_roc(releases: Sequence[SiteRelease]) -> list[CurvePoints]:
     """ROC curve of all sites' cases as one cohort, from the sites' own score bins.
 
     Merging histograms keeps only the edges every site kept, which can leave a pooled
-    curve of two or three points; here each threshold is an edge of any site, and a site's
-    bin that straddles it counts the share of the bin above it, with cases spread evenly
-    in log-odds within the bin (the assumption of
-    :func:`site_agent.statistics.binned_auc.interpolated_auc`). Empty when a class is absent.
+    curve of two or three points; here each threshold is an edge of any site's bins of
+    either class, and a bin that straddles it counts the share of the bin above it
+    (:func:`site_agent.statistics.binned_auc.interpolated_roc`). Empty when a class is
+    absent.
     """
     hists = [r.statistics.histogram for r in releases]
-    big_p = sum(sum(h.positive) for h in hists)
-    big_n = sum(sum(h.negative) for h in hists)
-    if not releases or not big_p or not big_n:
+    if not hists:
         return []
-    thresholds = np.array(sorted({e for h in hists for e in h.edges}, reverse=True))
-    z = clamped_logit(thresholds)
-    above_pos = np.zeros(thresholds.size)
-    above_neg = np.zeros(thresholds.size)
-    for h in hists:
-        edges = clamped_logit(np.asarray(h.edges, dtype=float))
-        lo, hi = edges[:-1], edges[1:]
-        # Share of each bin at or above each threshold, cases spread evenly within the bin.
-        width = np.maximum(hi - lo, 1e-12)
-        share = np.clip((hi[None, :] - z[:, None]) / width[None, :], 0.0, 1.0)
-        above_pos += share @ np.asarray(h.positive, dtype=float)
-        above_neg += share @ np.asarray(h.negative, dtype=float)
-    tpr = [0.0, *(above_pos / big_p).tolist(), 1.0]
-    fpr = [0.0, *(above_neg / big_n).tolist(), 1.0]
-    return [CurvePoints(site=POOLED, kind="roc", x=fpr, y=tpr)]
+    curve, exact = interpolated_roc(
+        [h.class_histogram("positive") for h in hists],
+        [h.class_histogram("negative") for h in hists],
+    )
+    if curve.reason is not None:
+        return []
+    return [
+        CurvePoints(
+            site=POOLED, kind="roc", x=list(curve.fpr), y=list(curve.tpr), exact=list(exact)
+        )
+    ]

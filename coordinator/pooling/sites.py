@@ -182,7 +182,13 @@ def site_curves(site: str, summary: MetricsSummary) -> list[CurvePoints]:
     curves = []
     if summary.roc.reason is None:
         curves.append(
-            CurvePoints(site=site, kind="roc", x=list(summary.roc.fpr), y=list(summary.roc.tpr))
+            CurvePoints(
+                site=site,
+                kind="roc",
+                x=list(summary.roc.fpr),
+                y=list(summary.roc.tpr),
+                exact=list(summary.roc.exact),
+            )
         )
     filled = [p for p in summary.calibration if p.n > 0 and p.mean_score is not None]
     if filled:

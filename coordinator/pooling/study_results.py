@@ -66,6 +66,11 @@ class CurvePoints(_Record):
     x: list[float]
     y: list[float]
     counts: list[int] | None = Field(default=None, description="Cases per calibration bin.")
+    exact: list[bool] | None = Field(
+        default=None,
+        description="ROC: whether each point rests on released counts of both classes "
+        "(else one coordinate is interpolated within a bin).",
+    )
 
 
 class TwoByTwo(_Record):

@@ -31,8 +31,11 @@ def roc_section(results: StudyResults) -> str:
     drawn = (
         "Curves are drawn from the score bins the sites released, so a curve is coarser "
         "than the site's exact AUC when its scores crowd into few bins; the area under the "
-        "drawn curve is given beside the AUC where the two differ. The pooled curve uses "
-        "every site's own bins, with cases spread evenly in log-odds within a bin."
+        "drawn curve is given beside the AUC where the two differ. Each class keeps its own "
+        "bins, so a point at an edge of one class only has its other coordinate "
+        "interpolated, with cases spread evenly in log-odds within a bin; dots in the "
+        "per-site panels mark the points both classes' counts fix. The pooled curve uses "
+        "every site's own bins the same way."
     )
     return html_figure(
         "fig-roc-all",

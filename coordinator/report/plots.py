@@ -223,7 +223,10 @@ def _outer_labels(axes: Sequence[Axes], columns: int, xlabel: str, ylabel: str) 
 
 
 def roc_small_multiples_svg(curves: Sequence[CurvePoints], aucs: dict[str, str]) -> str:
-    """Draw one small ROC panel per site (pooled last), each titled with its AUC."""
+    """Draw one small ROC panel per site (pooled last), each titled with its AUC.
+
+    Where a curve has points with one interpolated coordinate, its exact points are dots.
+    """
     with plt.rc_context(STYLE):
         fig, axes = _grid(len(curves), 3, 3.0)
         for i, (ax, curve) in enumerate(zip(axes, curves, strict=True)):
@@ -231,6 +234,11 @@ def roc_small_multiples_svg(curves: Sequence[CurvePoints], aucs: dict[str, str])
             line_colour = _POOLED_COLOUR if pooled else colour(i)
             ax.plot([0, 1], [0, 1], color="#bbbbbb", linestyle=":", linewidth=1)
             ax.plot(curve.x, curve.y, color=line_colour, linestyle="--" if pooled else "-")
+            if curve.exact is not None and not all(curve.exact):
+                # Dots: points on released counts of both classes; between them one
+                # coordinate is interpolated within a bin.
+                dots = [(x, y) for x, y, e in zip(curve.x, curve.y, curve.exact, strict=True) if e]
+                ax.scatter(*zip(*dots, strict=True), s=6, color=line_colour, zorder=3)
             name = "Pooled" if pooled else curve.site
             ax.set_title(f"{name}\nAUC {aucs[curve.site]}" if curve.site in aucs else name)
             _roc_axes(ax)

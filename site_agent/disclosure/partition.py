@@ -13,7 +13,8 @@ argument for it and its application to each kind of count are kept together.)
 Rule (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
 ----------------------------------------------------------------
 For each class (positive, negative) separately; dynamic programming keeps the most cuts,
-thresholds first.
+thresholds first, and first of all the cuts both classes can keep together (the row of
+all cases is binned on those, so that it stays as fine as one shared partition allows).
 
 1. *The site*, ``K_site``: every cell of the site's partition holds 0 or at least ``m``.
 2. *The subgroups*, ``K_sub ⊆ K_site``, one set for every level of every attribute:
@@ -31,9 +32,14 @@ by everything of that population that reported it:
 
 - a threshold loses the cells of that class (``tp`` and ``fn``, or ``fp`` and ``tn``),
   which are censored (a range, listed in the note, with its patient moments);
-- a histogram or calibration edge is merged away (policy ``merge``: the bins either side
-  become one) or the bins either side are suppressed (policy ``suppress``); calibration
-  bins count both classes, so their edge goes if either class loses it;
+- a histogram edge is merged away from the class row that lost it (policy ``merge``: the
+  bins either side become one; each class row keeps its own cuts, and the row of all
+  cases keeps the cuts both classes kept), or the bins either side are suppressed in that
+  class's row (policy ``suppress``: the edges stay, so that windows of a monitored site
+  stay comparable bin by bin, and the suppressed cells are bounded downstream);
+- a calibration edge is merged away (policy ``merge``) or the bins either side are
+  suppressed (policy ``suppress``); calibration bins count both classes, so their edge
+  goes if either class loses it;
 - the note lists the cuts each class lost for the site (``positive_cuts_withheld``,
   ``negative_cuts_withheld``) and, per attribute, those its levels lost
   (``attribute_cuts_withheld``, which include the site's).
@@ -105,6 +111,8 @@ from site_agent.statistics.summaries import (
 CLASSES = ("positive", "negative")
 _THRESHOLD_WEIGHT = 1000
 """A kept threshold counts as this many kept edges: thresholds are what a protocol asks."""
+_SHARED_WEIGHT = 1e9
+"""Weight that keeps, in each class, every cut both classes could keep together."""
 
 
 @dataclass
@@ -150,9 +158,14 @@ def control_partition(
     out = PartitionControl()
     site_kept: dict[str, frozenset[float]] = {}
     subgroup_kept: dict[str, frozenset[float]] = {}
+    # The cuts both classes can keep together come first (they bin the row of all cases);
+    # each class then adds the cuts its own counts allow.
+    shared = _kept_starts(np.vstack([_cells(site, cuts, w) for w in (0, 1)]), weights, m)
+    class_weights = weights.copy()
+    class_weights[shared] += _SHARED_WEIGHT
     for which, name in enumerate(CLASSES):
         site_row = _cells(site, cuts, which)
-        site_starts = _kept_starts(site_row[np.newaxis, :], weights, m)
+        site_starts = _kept_starts(site_row[np.newaxis, :], class_weights, m)
         if release.subgroups:
             level_rows = [
                 [_cells(s, cuts, which) for s in levels] for levels in by_attribute.values()
@@ -484,12 +497,24 @@ def _histogram(
     path: str,
     out: PartitionControl,
 ) -> ScoreHistogram:
+    """Withhold, from each class row, the edges that class lost.
+
+    ``merge``: each class row keeps its own kept cuts (the bins either side of a lost
+    edge become one) and the row of all cases keeps the cuts both classes kept.
+    ``suppress``: the edges stay; the bins either side of a lost edge are suppressed in
+    that class's row and listed in the note.
+    """
     both = kept["positive"] & kept["negative"]
-    if all(e in both for e in h.edges[1:-1]):
+    inner = h.edges[1:-1]
+    if all(e in both for e in inner):
         return h
     if action is SmallCellAction.MERGE:
         out.merged.append(path)
-        return h.coarsened((0.0, *(e for e in h.edges[1:-1] if e in both), 1.0))
+
+        def on(keep: frozenset[float]) -> tuple[float, ...]:
+            return (0.0, *(e for e in inner if e in keep), 1.0)
+
+        return h.with_edges(on(both), on(kept["positive"]), on(kept["negative"]))
     pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
     rows = []
     for name, row in (("positive", h.positive), ("negative", h.negative)):

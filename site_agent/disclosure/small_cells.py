@@ -9,12 +9,15 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
 -------------------------------------------------------------------------------------
 1. Refused: a subgroup attribute the policy does not allow (checked on the request too,
    before any data is read: :mod:`site_agent.disclosure.request_check`).
-2. Refused as case-level output: a histogram, calibration table or threshold list with
-   more entries than the site has cases (its resolution is then one case, not a bin).
+2. Refused as case-level output: a calibration table or threshold list with more entries
+   than the site has cases (its resolution is then one case, not a bin). A histogram may
+   have more bins than the site has cases: rules 4a and 5 leave every released bin 0 or
+   at least ``m``.
 3. Refused: a small site total (cases, positives, negatives, patients); a small total in
    any subgroup level. A small number of pending labels is withheld instead (pending cases
    leave the release: their counts, the ``all`` histogram row and the agreement tables,
-   which count them too, are dropped).
+   which count them too, are dropped). Pending cases are counted in the site's ``all``
+   row only; a subgroup's ``all`` row counts its labelled cases (noted as withheld).
 4. Refused: subgroup combinations. The cases of an attribute in no released level must
    not be small, and no signed sum of one union of levels per attribute and the site
    total may be small (nested levels, overlaps of three attributes;
@@ -25,7 +28,8 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    subgroup level and of each attribute's rest holds 0 or at least ``m`` cases. The site's
    cuts are chosen from the site alone; each attribute's levels keep a subset of them.
    Cuts that break this are withheld by everything of that population that reports them
-   (threshold cells censored, bins merged or suppressed as the policy says) and listed in
+   (threshold cells censored, bins merged or suppressed as the policy says; merged
+   histogram bins per class) and listed in
    the note (:mod:`site_agent.disclosure.partition`). Model-versus-reader agreement tables whose
    threshold splits off a small count of a reader's calls are withheld.
 5. Small cells: a small confusion cell and its partner in the same class (class totals
@@ -33,12 +37,12 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    (:class:`~site_agent.statistics.censored.CensoredCount`, never a count); the
    threshold's patient moments are dropped with them. Agreement cells are suppressed
    (set to 0, listed in the note, the table marked ``censored`` so that no kappa is
-   derived from it). Histogram
-   and calibration bins are suppressed, with further bins until no row's suppressed sum is
-   small, or merged with their neighbours until every row of every bin is 0 or at least
-   ``m`` (the new edges are a subset of the old). Agreement tables of the model at two
-   thresholds against one reader are withheld whole when their difference would isolate
-   a small number of cases (:mod:`site_agent.disclosure.threshold_tables`).
+   derived from it). Histogram and calibration bins are suppressed, with further bins
+   until no row's suppressed sum is small, or merged with their neighbours until every
+   row of every bin is 0 or at least ``m`` (the new edges are a subset of the old; under
+   merging each class row keeps its own edges, rule 4a). Agreement tables
+   of the model at two thresholds against one reader are withheld whole when their
+   difference would isolate a small number of cases (:mod:`site_agent.disclosure.threshold_tables`).
 6. With differential privacy on, every count and per-bin sum gets noise *first*
    (:mod:`site_agent.disclosure.privacy_budget`); rules 2-5 then run on the noisy values, which is
    post-processing. The exact site-level estimates and the patient moments are withheld,
@@ -83,6 +87,7 @@ from site_agent.disclosure.subgroup_combinations import (
 from site_agent.disclosure.threshold_tables import differencing_tables
 from site_agent.statistics.censored import Cell, CensoredCount
 from site_agent.statistics.summaries import (
+    CLASS_ROWS,
     AgreementTable,
     CalibrationBins,
     ConfusionCounts,
@@ -269,11 +274,9 @@ def _totals(stats: SufficientStatistics) -> tuple[int, ...]:
 
 def _check_resolution(stats: SufficientStatistics) -> None:
     cases = stats.n_observations
-    sizes = (
-        len(stats.histogram.edges) - 1,
-        len(stats.calibration.edges) - 1,
-        len(stats.confusion),
-    )
+    # Histograms are exempt: rules 4a and 5 leave every released bin 0 or at least m
+    # cases, so their resolution is never one case.
+    sizes = (len(stats.calibration.edges) - 1, len(stats.confusion))
     if any(size > cases for size in sizes):
         raise refusal(RefusalCode.CASE_LEVEL_OUTPUT)
 
@@ -293,13 +296,14 @@ def _controlled(
             agreement = ()
         n_observations -= n_pending
         n_pending = 0
-        histogram = histogram.model_copy(
-            update={
-                "all": tuple(
-                    p + q for p, q in zip(histogram.positive, histogram.negative, strict=True)
-                )
-            }
-        )
+        histogram = _labelled_only(histogram)
+    elif n_pending and path != "statistics":
+        # A subgroup's all row counts its labelled cases only: pending cases are no class
+        # of the partition rule, and a level's pending counts at its edges could be set
+        # against the site's (and the other levels') to recover a small pending count
+        # the site's own bins merged away (found by the brute-force tests).
+        note.withheld.append(f"{path}.histogram.pending")
+        histogram = _labelled_only(histogram)
     # Model-at-threshold tables that two thresholds would difference into a small cell.
     dropped = differencing_tables(agreement, [c.threshold for c in stats.confusion], m)
     note.withheld.extend(f"{path}.agreement[{i}]" for i in sorted(dropped))
@@ -391,12 +395,28 @@ def _groups(rows: Sequence[Sequence[int]], m: int) -> list[tuple[int, int]]:
     return groups[::-1]
 
 
+def _labelled_only(h: ScoreHistogram) -> ScoreHistogram:
+    """Return the histogram with its all row counting labelled cases only."""
+    rows = (h.class_on_edges("positive"), h.class_on_edges("negative"))
+    return h.model_copy(update={"all": tuple(p + q for p, q in zip(*rows, strict=True))})
+
+
 def _histogram(
     h: ScoreHistogram, m: int, action: SmallCellAction, path: str, note: _Note
 ) -> ScoreHistogram:
-    pending = tuple(a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True))
-    rows = (h.positive, h.negative, pending)
-    if all(_ok(v, m) for row in rows for v in row):
+    """Control small bins of pending cases (and of a class row, should one remain).
+
+    The class rows keep the cuts :mod:`site_agent.disclosure.partition` left them while no
+    bin of pending cases is small. Once one is, every row goes to the same bins (merged,
+    or suppressed on the same edges): pending cases are no class of the partition rule,
+    and a class row finer than the all row could be set against the all row.
+    """
+    positive, negative = (h.class_on_edges(name) for name in CLASS_ROWS)
+    pending = tuple(a - p - n for a, p, n in zip(h.all, positive, negative, strict=True))
+    rows = (positive, negative, pending)
+    if all(_ok(v, m) for row in rows for v in row) and all(
+        _ok(v, m) for name in CLASS_ROWS for v in getattr(h, name)
+    ):
         return h
     if action is SmallCellAction.MERGE:
         groups = _groups(rows, m)

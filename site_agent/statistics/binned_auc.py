@@ -21,24 +21,41 @@ within bins (the argument of :func:`~site_agent.statistics.roc.histogram_auc`). 
 returned ``bound`` is the largest distance from *this* estimate to that interval's ends:
 ``half_overlap + |estimate − midpoint|``.
 
+Several sites' bins of one class (:func:`shared_shape`) tell more than each alone: where
+one site's bin is wide, the others' narrower bins show how the class's scores spread in
+it. One step of the self-consistency algorithm for grouped data (Turnbull 1976), started
+from cases spread evenly within their bins, re-spreads each site's bin by the shape all
+sites' bins of that class give together. The worst-case bound is still taken from the
+released bins alone.
+
+ROC points (:func:`interpolated_roc`) come at every edge of either class; a point is
+exact where the edge is an edge of both classes' bins, and one coordinate is
+interpolated (cases spread evenly in log-odds) where it is not.
+
 References
 ----------
 Hanley JA, McNeil BJ (1982). The meaning and use of the area under a receiver operating
 characteristic (ROC) curve. Radiology 143:29–36. doi:10.1148/radiology.143.1.7063747
+Turnbull BW (1976). The empirical distribution function with arbitrarily grouped,
+censored and truncated data. J R Stat Soc B 38:290–295 (the self-consistency equations).
 """
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
+from itertools import pairwise
 
 import numpy as np
 from numpy.typing import NDArray
 
 from site_agent.contract.score_scales import DEFAULT_LOGIT_LIMIT
-from site_agent.statistics.roc import HistogramAuc, mixed_histogram_auc
+from site_agent.statistics.roc import HistogramAuc, RocCurve, mixed_histogram_auc
 
 FloatArray = NDArray[np.float64]
+Histograms = Sequence[tuple[Sequence[float], Sequence[float]]]
+"""``(edges, counts)`` pairs on [0, 1], e.g. one class at several sites."""
 
 LOGIT_CLAMP = DEFAULT_LOGIT_LIMIT + 1.0
 """Log-odds given to the scores 0 and 1 (the outer edges), which have none."""
@@ -67,20 +84,25 @@ def probability_greater(a: FloatArray, b: FloatArray, c: FloatArray, d: FloatArr
 
 
 def interpolated_auc(
-    positive: Sequence[tuple[Sequence[float], Sequence[float]]],
-    negative: Sequence[tuple[Sequence[float], Sequence[float]]],
+    positive: Histograms,
+    negative: Histograms,
+    *,
+    spread: tuple[Histograms, Histograms] | None = None,
 ) -> HistogramAuc:
     """Return the AUC of binned scores with cases spread evenly in log-odds within bins.
 
     ``positive`` and ``negative`` hold ``(edges, counts)`` pairs on [0, 1], as for
     :func:`~site_agent.statistics.roc.mixed_histogram_auc`, which gives the midpoint and
-    half-width this estimate's ``bound`` is built from (module docstring).
+    half-width this estimate's ``bound`` is built from (module docstring). ``spread``,
+    when given, holds the same cases on finer bins (:func:`shared_shape`): the estimate is
+    taken from them, the bound still from ``positive`` and ``negative``.
     """
     midpoint = mixed_histogram_auc(positive, negative)
     if midpoint.reason is not None:
         return midpoint
-    pos_lo, pos_hi, pos_n = _stacked(positive)
-    neg_lo, neg_hi, neg_n = _stacked(negative)
+    pos_source, neg_source = spread if spread is not None else (positive, negative)
+    pos_lo, pos_hi, pos_n = _stacked(pos_source)
+    neg_lo, neg_hi, neg_n = _stacked(neg_source)
     p = probability_greater(pos_lo[:, None], pos_hi[:, None], neg_lo[None, :], neg_hi[None, :])
     pairs = pos_n[:, None] * neg_n[None, :]
     value = float((pairs * p).sum()) / (float(pos_n.sum()) * float(neg_n.sum()))
@@ -88,9 +110,67 @@ def interpolated_auc(
     return HistogramAuc(value, bound, midpoint.n_positive, midpoint.n_negative, None)
 
 
-def _stacked(
-    histograms: Sequence[tuple[Sequence[float], Sequence[float]]],
-) -> tuple[FloatArray, FloatArray, FloatArray]:
+def shared_shape(histograms: Histograms) -> list[tuple[tuple[float, ...], tuple[float, ...]]]:
+    """Return each histogram on the union of all their edges, spread by their shared shape.
+
+    The shape is the sum of every histogram with its cases spread evenly in log-odds
+    within each bin, on the union of the edges; each histogram's bin is then divided
+    among the finer bins inside it in proportion to that shape (one self-consistency step
+    of Turnbull 1976; counts stay within their own bins, so every released count is kept).
+    """
+    grid = np.array(sorted({float(e) for edges, _ in histograms for e in edges}))
+    width = np.maximum(np.diff(clamped_logit(grid)), _SLIVER)
+    bins = [
+        [(int(i), int(j), float(n)) for (i, j), n in zip(pairwise(starts), counts, strict=True)]
+        for starts, counts in (
+            (np.searchsorted(grid, np.asarray(edges, dtype=float)), counts)
+            for edges, counts in histograms
+        )
+    ]
+    shape = np.zeros(width.size)
+    for i, j, n in itertools.chain.from_iterable(bins):
+        shape[i:j] += n * width[i:j] / width[i:j].sum()
+    out = []
+    for spans in bins:
+        fine = np.zeros(width.size)
+        for i, j, n in spans:
+            if n > 0:
+                fine[i:j] = n * shape[i:j] / shape[i:j].sum()
+        out.append((tuple(grid.tolist()), tuple(fine.tolist())))
+    return out
+
+
+def interpolated_roc(
+    positive: Histograms, negative: Histograms
+) -> tuple[RocCurve, tuple[bool, ...]]:
+    """Return ROC points at every edge of either class, and which of them are exact.
+
+    At each edge (by decreasing threshold) the share of each class at or above it counts
+    a bin that straddles the edge by the part of the bin above it, with cases spread
+    evenly in log-odds (module docstring). A point is exact (``True``) when its edge is an
+    edge of every histogram of both classes; the first and last points, (0, 0) and (1, 1),
+    always are. A curve with a reason and no points when a class is empty.
+    """
+    midpoint = mixed_histogram_auc(positive, negative)
+    if midpoint.reason is not None:
+        return RocCurve((), (), (), midpoint.reason.replace("AUC", "ROC curve")), ()
+    everything = [*positive, *negative]
+    inner = sorted({float(e) for edges, _ in everything for e in edges[1:-1]}, reverse=True)
+    z = clamped_logit(np.asarray(inner, dtype=float))
+    shares = []
+    for histograms in (positive, negative):
+        lo, hi, n = _stacked(histograms)
+        share = np.clip((hi[None, :] - z[:, None]) / (hi - lo)[None, :], 0.0, 1.0)
+        shares.append([0.0, *(share @ n / n.sum()).tolist(), 1.0])
+    exact = tuple(
+        True if k in (0, len(inner) + 1) else all(inner[k - 1] in set(e) for e, _ in everything)
+        for k in range(len(inner) + 2)
+    )
+    curve = RocCurve(tuple(shares[1]), tuple(shares[0]), (math.inf, *inner, 0.0))
+    return curve, exact
+
+
+def _stacked(histograms: Histograms) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Return bin lower and upper ends on the clamped log-odds scale, and counts.
 
     Inputs were checked by :func:`~site_agent.statistics.roc.mixed_histogram_auc` first.

@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from site_agent.contract.release import EstimateRecord, finite_or_none
 from site_agent.exceptions import InputError
 from site_agent.statistics.agreement import cohen_kappa
+from site_agent.statistics.binned_auc import interpolated_auc, interpolated_roc
 from site_agent.statistics.calibration import expected_calibration_error
 from site_agent.statistics.censored import (
     CENSORED_REASON,
@@ -37,7 +38,6 @@ from site_agent.statistics.proportions import (
     clustered_proportion_from_moments,
     wilson,
 )
-from site_agent.statistics.roc import histogram_auc, histogram_roc
 from site_agent.statistics.summaries import (
     AgreementTable,
     CalibrationBins,
@@ -108,14 +108,18 @@ class HistogramAucRecord(_Summary):
 
 
 class RocPoints(_Summary):
-    """ROC points, one per histogram edge, by decreasing threshold.
+    """ROC points, one per histogram edge of either class, by decreasing threshold.
 
-    The first threshold is None: above every score, nothing is called positive.
+    The first threshold is None: above every score, nothing is called positive. ``exact``
+    says which points rest on released counts of both classes; at the others one
+    coordinate is interpolated within a bin
+    (:func:`site_agent.statistics.binned_auc.interpolated_roc`).
     """
 
     fpr: tuple[float, ...]
     tpr: tuple[float, ...]
     thresholds: tuple[float | None, ...]
+    exact: tuple[bool, ...] = ()
     reason: str | None = None
 
 
@@ -188,8 +192,9 @@ def summarize(
     s = statistics
     labelled = s.n_positive + s.n_negative
     h = s.histogram
-    hist = histogram_auc(h.positive, h.negative)
-    roc = histogram_roc(h.positive, h.negative, h.edges)
+    classes = [h.class_histogram("positive")], [h.class_histogram("negative")]
+    hist = interpolated_auc(*classes)
+    roc, exact = interpolated_roc(*classes)
     return MetricsSummary(
         n_observations=s.n_observations,
         n_positive=s.n_positive,
@@ -210,6 +215,7 @@ def summarize(
             fpr=roc.fpr,
             tpr=roc.tpr,
             thresholds=tuple(finite_or_none(t) for t in roc.thresholds),
+            exact=exact,
             reason=roc.reason,
         ),
         brier=_brier(s.calibration),

@@ -46,6 +46,8 @@ from site_agent.statistics.proportions import ClusterMoments
 MAX_BINS = 1000
 """Most bins a histogram may have: keeps a release from carrying per-case values."""
 MAX_THRESHOLDS = 100
+CLASS_ROWS = ("positive", "negative")
+"""The class rows of a score histogram."""
 MAX_CATEGORIES = 20
 """Most levels an ordinal agreement table may span."""
 MAX_AGREEMENT_TABLES = 200
@@ -233,45 +235,90 @@ class ConfusionCounts(_Stat):
 
 
 class ScoreHistogram(_Stat):
-    """Score counts per bin: diseased, non-diseased, and every case (pending labels too)."""
+    """Score counts per bin: diseased, non-diseased, and every case (pending labels too).
+
+    ``edges`` bin the ``all`` row, and each class row unless the class has edges of its
+    own (``positive_edges``, ``negative_edges``): disclosure control keeps for each class
+    the cuts its own counts allow (:mod:`site_agent.disclosure.partition`), so a class row
+    may be finer than ``all``, never coarser (every edge of ``all`` is an edge of both
+    classes). None means the class row is on ``edges``.
+    """
 
     edges: tuple[float, ...]
     positive: tuple[NonNegativeInt, ...]
     negative: tuple[NonNegativeInt, ...]
     all: tuple[NonNegativeInt, ...]
+    positive_edges: tuple[float, ...] | None = None
+    negative_edges: tuple[float, ...] | None = None
 
     @model_validator(mode="after")
     def _lengths_match_edges(self) -> ScoreHistogram:
         _check_edges(self.edges)
-        bins = len(self.edges) - 1
-        if not len(self.positive) == len(self.negative) == len(self.all) == bins:
+        if len(self.all) != len(self.edges) - 1:
             raise ValueError("histogram counts must have one entry per bin")
+        for name in CLASS_ROWS:
+            edges = self.class_edges(name)
+            _check_edges(edges)
+            if len(getattr(self, name)) != len(edges) - 1:
+                raise ValueError("histogram counts must have one entry per bin")
+            if not set(self.edges) <= set(edges):
+                raise ValueError(f"every edge of the all row must be an edge of {name}")
         return self
 
+    def class_edges(self, name: str) -> tuple[float, ...]:
+        """Return the edges of class row ``name`` (``positive`` or ``negative``)."""
+        own: tuple[float, ...] | None = getattr(self, f"{name}_edges")
+        return self.edges if own is None else own
+
+    def class_histogram(self, name: str) -> tuple[tuple[float, ...], tuple[int, ...]]:
+        """Return ``(edges, counts)`` of class row ``name``."""
+        return self.class_edges(name), getattr(self, name)
+
+    def class_on_edges(self, name: str) -> tuple[int, ...]:
+        """Return class row ``name`` on ``edges`` (the all row's bins; exact)."""
+        edges, counts = self.class_histogram(name)
+        return _regroup(counts, _groups_for(edges, self.edges))
+
     def coarsened(self, edges: tuple[float, ...]) -> ScoreHistogram:
-        """Return the histogram on ``edges``, a subset of this one's edges (exact)."""
-        groups = _groups_for(self.edges, edges)
+        """Return the histogram with every row on ``edges``, a subset of ``edges`` (exact)."""
+        return self.with_edges(edges, edges, edges)
+
+    def with_edges(
+        self,
+        edges: tuple[float, ...],
+        positive_edges: tuple[float, ...],
+        negative_edges: tuple[float, ...],
+    ) -> ScoreHistogram:
+        """Return the histogram re-binned row by row to subsets of its own edges (exact)."""
+        rows = {}
+        for name, new in (("positive", positive_edges), ("negative", negative_edges)):
+            old, counts = self.class_histogram(name)
+            rows[name] = _regroup(counts, _groups_for(old, new))
         return ScoreHistogram(
             edges=edges,
-            positive=_regroup(self.positive, groups),
-            negative=_regroup(self.negative, groups),
-            all=_regroup(self.all, groups),
+            all=_regroup(self.all, _groups_for(self.edges, edges)),
+            positive_edges=None if positive_edges == edges else positive_edges,
+            negative_edges=None if negative_edges == edges else negative_edges,
+            **rows,
         )
 
     def merge(self, other: ScoreHistogram) -> ScoreHistogram:
         """Return the histogram of the union of two disjoint sets of cases.
 
-        Histograms whose edges differ (a site's disclosure step may merge small bins) are
-        first re-binned to the edges both kept, which is exact.
+        Each row is first re-binned to the edges both histograms kept for it (sites keep
+        different edges once disclosure control merges small bins), which is exact.
         """
-        if self.edges != other.edges:
-            edges = common_edges(self.edges, other.edges)
-            return self.coarsened(edges).merge(other.coarsened(edges))
-        return ScoreHistogram(
-            edges=self.edges,
-            positive=_add(self.positive, other.positive),
-            negative=_add(self.negative, other.negative),
-            all=_add(self.all, other.all),
+        shared = [
+            common_edges(self.edges, other.edges),
+            *(common_edges(self.class_edges(n), other.class_edges(n)) for n in CLASS_ROWS),
+        ]
+        a, b = self.with_edges(*shared), other.with_edges(*shared)
+        return a.model_copy(
+            update={
+                "positive": _add(a.positive, b.positive),
+                "negative": _add(a.negative, b.negative),
+                "all": _add(a.all, b.all),
+            }
         )
 
 

@@ -202,13 +202,16 @@ def test_merged_histogram_matches_numpy_histogram_on_the_merged_edges(tmp_path: 
     scores = np.loadtxt(site.data, delimiter=",", skiprows=1, usecols=3)
     labels = np.loadtxt(site.data, delimiter=",", skiprows=1, usecols=2)
     # Reference: numpy.histogram (last bin closed, as in site_agent.statistics.summaries).
-    expected_pos, _ = np.histogram(scores[labels == 1], bins=np.asarray(histogram.edges))
-    expected_neg, _ = np.histogram(scores[labels == 0], bins=np.asarray(histogram.edges))
-    assert list(histogram.positive) == expected_pos.tolist()
-    assert list(histogram.negative) == expected_neg.tolist()
-    # Minimum cell size 5: common practice in health-statistics disclosure control.
-    assert all(v == 0 or v >= 5 for v in (*histogram.positive, *histogram.negative))
-    assert set(histogram.edges) <= set(uniform_edges(50))
+    # Each class keeps its own edges; the row of all cases keeps those both kept.
+    for name, label in (("positive", 1), ("negative", 0)):
+        edges = np.asarray(histogram.class_edges(name))
+        expected, _ = np.histogram(scores[labels == label], bins=edges)
+        assert list(getattr(histogram, name)) == expected.tolist()
+        # Minimum cell size 5: common practice in health-statistics disclosure control.
+        assert all(v == 0 or v >= 5 for v in getattr(histogram, name))
+        assert set(histogram.edges) <= set(edges) <= set(uniform_edges(50))
+    expected_all, _ = np.histogram(scores, bins=np.asarray(histogram.edges))
+    assert list(histogram.all) == expected_all.tolist()
 
 
 def test_suppressed_histogram_cells_are_zero_and_listed(tmp_path: Path) -> None:
@@ -238,9 +241,12 @@ def test_suppressed_histogram_cells_are_zero_and_listed(tmp_path: Path) -> None:
 
 
 def test_request_for_per_case_scores_is_refused_as_case_level_output(tmp_path: Path) -> None:
-    """A histogram with more bins than cases (per-case scores) is declined and logged."""
+    """Calibration bins outnumbering the cases (per-case scores) are declined and logged.
+
+    (A histogram may have more bins than cases: its bins are merged to 0 or >= m cases.)
+    """
     site = _Site(tmp_path / "fernbrook", _policy())
-    protocol = _protocol(histogram_edges=uniform_edges(1000))
+    protocol = _protocol(calibration_edges=uniform_edges(1000))
     site.approve(protocol)
 
     (reply,) = _ask(site, protocol)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -68,3 +70,49 @@ def test_clamped_logit_gives_the_outer_edges_finite_log_odds() -> None:
     z = clamped_logit(np.array([0.0, 0.5, 1.0]))
 
     assert z.tolist() == pytest.approx([-17.0, 0.0, 17.0])
+
+
+def test_roc_points_on_shared_edges_are_scikit_learns_and_all_exact() -> None:
+    """Both classes on one set of edges: every point exact, equal to sklearn's roc_curve.
+
+    Reference: scikit-learn ``roc_curve(drop_intermediate=False)`` on each score replaced
+    by its bin's lower edge (a case is called positive when its bin starts at or above t).
+    """
+    from sklearn.metrics import roc_curve
+
+    from site_agent.statistics.binned_auc import interpolated_roc
+
+    rng = np.random.default_rng(5)
+    edges = np.linspace(0.0, 1.0, 11)
+    scores = rng.beta(2, 2, 300)
+    labels = rng.random(300) < scores
+    lower = edges[np.clip(np.searchsorted(edges, scores, side="right") - 1, 0, 9)]
+    pos = np.histogram(scores[labels], bins=edges)[0]
+    neg = np.histogram(scores[~labels], bins=edges)[0]
+
+    curve, exact = interpolated_roc([(tuple(edges), tuple(pos))], [(tuple(edges), tuple(neg))])
+
+    assert all(exact)
+    fpr, tpr, _ = roc_curve(labels, lower, drop_intermediate=False)
+    ours = set(zip(np.round(curve.fpr, 12), np.round(curve.tpr, 12), strict=True))
+    assert set(zip(np.round(fpr, 12), np.round(tpr, 12), strict=True)) <= ours
+
+
+def test_shared_shape_keeps_every_released_count_in_its_own_bin() -> None:
+    """Re-spreading moves cases only within their released bins (counts are kept)."""
+    from site_agent.statistics.binned_auc import shared_shape
+
+    fine = (0.0, 0.2, 0.4, 0.5, 0.6, 0.8, 1.0)
+    coarse = (0.0, 0.4, 0.8, 1.0)
+    histograms = [(fine, (1.0, 6.0, 2.0, 9.0, 5.0, 0.0)), (coarse, (10.0, 7.0, 3.0))]
+
+    spread = shared_shape(histograms)
+
+    for (edges, counts), (grid, values) in zip(histograms, spread, strict=True):
+        for (lo, hi), count in zip(itertools.pairwise(edges), counts, strict=True):
+            inside = [v for a, v in zip(grid[:-1], values, strict=True) if lo <= a < hi]
+            assert sum(inside) == pytest.approx(count)
+    # Within [0.4, 0.8) the coarse site's cases follow the fine site's 2 and 9 in the two
+    # equally wide (in log-odds) bins [0.4, 0.5) and [0.5, 0.6).
+    _, values = spread[1]
+    assert values[3] > 2 * values[2]
