@@ -237,8 +237,14 @@ def roc_small_multiples_svg(curves: Sequence[CurvePoints], aucs: dict[str, str])
             if curve.exact is not None and not all(curve.exact):
                 # Dots: points on released counts of both classes; between them one
                 # coordinate is interpolated within a bin.
-                dots = [(x, y) for x, y, e in zip(curve.x, curve.y, curve.exact, strict=True) if e]
-                ax.scatter(*zip(*dots, strict=True), s=6, color=line_colour, zorder=3)
+                marks = list(zip(curve.x, curve.y, curve.exact, strict=True))
+                ax.scatter(
+                    [x for x, _, e in marks if e],
+                    [y for _, y, e in marks if e],
+                    s=6,
+                    color=line_colour,
+                    zorder=3,
+                )
             name = "Pooled" if pooled else curve.site
             ax.set_title(f"{name}\nAUC {aucs[curve.site]}" if curve.site in aucs else name)
             _roc_axes(ax)
