@@ -15,11 +15,16 @@ from coordinator.pooling.sites import POOLED, estimate_row
 from coordinator.pooling.study_results import CurvePoints, MetricRow
 from site_agent.contract.release import SiteRelease, SubgroupRelease
 from site_agent.exceptions import InputError
-from site_agent.statistics.binned_auc import interpolated_auc, interpolated_roc, shared_shape
+from site_agent.statistics.binned_auc import (
+    Histograms,
+    interpolated_auc,
+    interpolated_roc,
+    shared_shape,
+)
 from site_agent.statistics.estimates import two_sided_z
 from site_agent.statistics.metrics import ProportionMetrics, summarize
 from site_agent.statistics.roc import hanley_mcneil_se
-from site_agent.statistics.summaries import ScoreHistogram, SufficientStatistics
+from site_agent.statistics.summaries import SufficientStatistics
 
 
 def merge_statistics(releases: Sequence[SiteRelease]) -> SufficientStatistics:
@@ -31,15 +36,18 @@ def merge_statistics(releases: Sequence[SiteRelease]) -> SufficientStatistics:
 
 def pooled_auc(releases: Sequence[SiteRelease], confidence: float = 0.95) -> MetricRow:
     """AUC of all sites' cases as one cohort; see :func:`cohort_auc`."""
-    return cohort_auc([(r.statistics.histogram, r.exact.auc.auc) for r in releases], confidence)
+    return cohort_auc([(r.statistics, r.exact.auc.auc) for r in releases], confidence)
 
 
 def cohort_auc(
-    parts: Sequence[tuple[ScoreHistogram, float | None]], confidence: float = 0.95
+    parts: Sequence[tuple[SufficientStatistics, float | None]], confidence: float = 0.95
 ) -> MetricRow:
     """AUC of several sites' cases as one cohort, with the largest possible binning error.
 
-    ``parts`` holds, per site, its score histogram and its exact AUC (None if withheld).
+    ``parts`` holds, per site, its statistics (whose score histogram is used, suppressed
+    cases as unknown within their span:
+    :meth:`~site_agent.statistics.summaries.SufficientStatistics.class_bins`) and its exact
+    AUC (None if withheld).
 
     The cohort AUC is a weighted sum over pairs of sites ``(i, j)`` of the share of
     (positive from ``i``, negative from ``j``) pairs ordered correctly::
@@ -62,12 +70,11 @@ def cohort_auc(
     ----------
     Hanley JA, McNeil BJ (1982). Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
     """
-    hists = [h for h, _ in parts]
-    pos = [sum(h.positive) for h in hists]
-    neg = [sum(h.negative) for h in hists]
-    positives = [h.class_histogram("positive") for h in hists]
-    negatives = [h.class_histogram("negative") for h in hists]
-    spread_pos, spread_neg = shared_shape(positives), shared_shape(negatives)
+    positives = [stats.class_bins("positive") for stats, _ in parts]
+    negatives = [stats.class_bins("negative") for stats, _ in parts]
+    pos = [sum(sum(counts) for _, counts in bins) for bins in positives]
+    neg = [sum(sum(counts) for _, counts in bins) for bins in negatives]
+    spread_pos, spread_neg = _shared_by_site(positives), _shared_by_site(negatives)
     big_p, big_n = sum(pos), sum(neg)
     reason = None if big_p and big_n else "the pooled cases lack a class: AUC undefined"
     value = bound = 0.0
@@ -81,7 +88,7 @@ def cohort_auc(
                 value += weight * exact
                 continue
             pair = interpolated_auc(
-                [positives[i]], [negatives[j]], spread=([spread_pos[i]], [spread_neg[j]])
+                positives[i], negatives[j], spread=(spread_pos[i], spread_neg[j])
             )
             value += weight * pair.auc
             bound += weight * pair.bound
@@ -103,6 +110,16 @@ def cohort_auc(
     )
 
 
+def _shared_by_site(sites: Sequence[Histograms]) -> list[Histograms]:
+    """Return every site's histograms spread by the shape all of them give together."""
+    flat = shared_shape([h for bins in sites for h in bins])
+    out: list[Histograms] = []
+    for bins in sites:
+        out.append(flat[: len(bins)])
+        flat = flat[len(bins) :]
+    return out
+
+
 def pooled_subgroup_rows(releases: Sequence[SiteRelease], confidence: float) -> list[MetricRow]:
     """Subgroups pooled across sites: each level's cases from every site as one cohort."""
     levels: dict[tuple[str, str], list[SubgroupRelease]] = {}
@@ -112,7 +129,7 @@ def pooled_subgroup_rows(releases: Sequence[SiteRelease], confidence: float) -> 
     rows = []
     for (attribute, level), groups in sorted(levels.items()):
         label = f"{attribute}={level}"
-        auc = cohort_auc([(g.statistics.histogram, g.auc.auc) for g in groups], confidence)
+        auc = cohort_auc([(g.statistics, g.auc.auc) for g in groups], confidence)
         rows.append(auc.model_copy(update={"subgroup": label}))
         merged = reduce(lambda a, b: a.merge(b), (g.statistics for g in groups))
         first = summarize(merged, confidence=confidence).thresholds[:1]
@@ -133,12 +150,11 @@ def cohort_roc(releases: Sequence[SiteRelease]) -> list[CurvePoints]:
     (:func:`site_agent.statistics.binned_auc.interpolated_roc`). Empty when a class is
     absent.
     """
-    hists = [r.statistics.histogram for r in releases]
-    if not hists:
+    if not releases:
         return []
     curve, exact = interpolated_roc(
-        [h.class_histogram("positive") for h in hists],
-        [h.class_histogram("negative") for h in hists],
+        [b for r in releases for b in r.statistics.class_bins("positive")],
+        [b for r in releases for b in r.statistics.class_bins("negative")],
     )
     if curve.reason is not None:
         return []

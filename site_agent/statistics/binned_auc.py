@@ -147,25 +147,28 @@ def interpolated_roc(
 
     At each edge (by decreasing threshold) the share of each class at or above it counts
     a bin that straddles the edge by the part of the bin above it, with cases spread
-    evenly in log-odds (module docstring). A point is exact (``True``) when its edge is an
-    edge of every histogram of both classes; the first and last points, (0, 0) and (1, 1),
-    always are. A curve with a reason and no points when a class is empty.
+    evenly in log-odds (module docstring). A point is exact (``True``) when no bin holding
+    cases, of any histogram of either class, straddles its edge; the first and last
+    points, (0, 0) and (1, 1), always are. A curve with a reason and no points when a
+    class is empty.
     """
     midpoint = mixed_histogram_auc(positive, negative)
     if midpoint.reason is not None:
         return RocCurve((), (), (), midpoint.reason.replace("AUC", "ROC curve")), ()
     everything = [*positive, *negative]
-    inner = sorted({float(e) for edges, _ in everything for e in edges[1:-1]}, reverse=True)
+    inner = sorted(
+        {float(e) for edges, _ in everything for e in edges if 0.0 < e < 1.0}, reverse=True
+    )
     z = clamped_logit(np.asarray(inner, dtype=float))
     shares = []
+    straddled = np.zeros(z.size, dtype=bool)  # a bin holding cases straddles the edge
     for histograms in (positive, negative):
         lo, hi, n = _stacked(histograms)
         share = np.clip((hi[None, :] - z[:, None]) / (hi - lo)[None, :], 0.0, 1.0)
         shares.append([0.0, *(share @ n / n.sum()).tolist(), 1.0])
-    exact = tuple(
-        True if k in (0, len(inner) + 1) else all(inner[k - 1] in set(e) for e, _ in everything)
-        for k in range(len(inner) + 2)
-    )
+        inside = (lo[None, :] < z[:, None]) & (z[:, None] < hi[None, :])
+        straddled |= (inside & (n > 0)[None, :]).any(axis=1)
+    exact = (True, *(not bool(v) for v in straddled), True)
     curve = RocCurve(tuple(shares[1]), tuple(shares[0]), (math.inf, *inner, 0.0))
     return curve, exact
 

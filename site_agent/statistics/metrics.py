@@ -191,8 +191,7 @@ def summarize(
     """
     s = statistics
     labelled = s.n_positive + s.n_negative
-    h = s.histogram
-    classes = [h.class_histogram("positive")], [h.class_histogram("negative")]
+    classes = s.class_bins("positive"), s.class_bins("negative")
     hist = interpolated_auc(*classes)
     roc, exact = interpolated_roc(*classes)
     return MetricsSummary(

@@ -474,6 +474,23 @@ class SufficientStatistics(_Stat):
         """Thresholds of the confusion counts, increasing."""
         return tuple(c.threshold for c in self.confusion)
 
+    def class_bins(self, name: str) -> list[tuple[tuple[float, ...], tuple[int, ...]]]:
+        """Return class ``name``'s released bins, with its hidden cases as one more bin.
+
+        A site whose policy suppresses small bins releases them as 0 (listed in its note);
+        the class total is released, so the cases they held are known in number but not
+        in place. They are returned as one bin spanning the bins of the row that read 0,
+        so that every AUC bound and ROC point computed from the bins counts them as
+        unknown within that span, never as absent. Only the released row when nothing is
+        hidden (or when noisy counts sum above the total).
+        """
+        edges, counts = self.histogram.class_histogram(name)
+        hidden = (self.n_positive if name == "positive" else self.n_negative) - sum(counts)
+        if hidden <= 0:
+            return [(edges, counts)]
+        zeros = [i for i, c in enumerate(counts) if c == 0] or [0, len(counts) - 1]
+        return [(edges, counts), ((edges[zeros[0]], edges[zeros[-1] + 1]), (hidden,))]
+
     def merge(self, other: SufficientStatistics) -> SufficientStatistics:
         """Return the statistics of the union of two disjoint sets of cases.
 

@@ -7,7 +7,10 @@ minimum cell sizes, at one site and for two sites merged:
 - an exact metric equals the one computed without suppression;
 - a metric resting on a censored cell has no point value; when a range is reported, the
   range contains the unsuppressed point estimate and the reported interval contains the
-  unsuppressed interval (its hull over the censored range is at least as wide).
+  unsuppressed interval (its hull over the censored range is at least as wide);
+- the AUC from released score bins, within its bound, contains the exact AUC of the
+  scores (scikit-learn's ``roc_auc_score``), whether the policy merges small bins or
+  suppresses them (suppressed cases count as unknown within their bins, never as 0).
 
 The corner shortcut of :mod:`site_agent.statistics.censored` is checked against a slow,
 obviously correct enumeration of every allowed count.
@@ -22,11 +25,12 @@ import pandas as pd
 import pytest
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
+from sklearn.metrics import roc_auc_score
 
 from site_agent.contract.protocol import EvaluationPlan, uniform_edges
 from site_agent.contract.release import EstimateRecord
 from site_agent.data.predictions import validate_predictions
-from site_agent.disclosure.policy import SitePolicy
+from site_agent.disclosure.policy import SitePolicy, SmallCellAction
 from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused
@@ -45,9 +49,16 @@ THRESHOLDS = (0.3, 0.5, 0.7, 0.9)
 
 
 def _statistics(
-    seed: int, n: int, p_positive: float, min_cell: int
+    seed: int,
+    n: int,
+    p_positive: float,
+    min_cell: int,
+    action: SmallCellAction = SmallCellAction.SUPPRESS,
 ) -> tuple[SufficientStatistics, SufficientStatistics]:
-    """Return one invented site's statistics without and with its minimum-cell rule."""
+    """Return one invented site's statistics without and with its minimum-cell rule.
+
+    The exact AUC of the scores is checked against the binned one here (module docstring).
+    """
     rng = np.random.default_rng(seed)
     labels = (rng.random(n) < p_positive).astype(int)
     # Scores on a few levels, shifted by label, so that small cells are common.
@@ -67,10 +78,15 @@ def _statistics(
         validate_predictions(frame), plan, site="alderbrook", protocol_hash="unregistered"
     )
     try:
-        controlled, _ = apply_policy(release, SitePolicy(min_cell=min_cell))
+        controlled, _ = apply_policy(release, SitePolicy(min_cell=min_cell, small_cells=action))
     except DisclosureRefused:
         assume(False)  # a small site total: refused as a whole, nothing to check
         raise
+    binned = summarize(controlled.statistics).auc
+    if 0 < labels.sum() < n:
+        exact = roc_auc_score(labels, scores)  # scikit-learn reference
+        assert binned.auc is not None and binned.bound is not None
+        assert abs(binned.auc - exact) <= binned.bound + 1e-12
     return release.statistics, controlled.statistics
 
 
@@ -119,12 +135,13 @@ def _summary_holds(reported: MetricsSummary, true: MetricsSummary) -> None:
     n=st.integers(30, 160),
     p_positive=st.floats(0.1, 0.9),
     min_cell=st.integers(2, 15),
+    action=st.sampled_from(list(SmallCellAction)),
 )
 def test_reported_values_hold_the_unsuppressed_values_at_one_site(
-    seed: int, n: int, p_positive: float, min_cell: int
+    seed: int, n: int, p_positive: float, min_cell: int, action: SmallCellAction
 ) -> None:
     """Each cell, bound and interval at one site holds the value without suppression."""
-    true, controlled = _statistics(seed, n, p_positive, min_cell)
+    true, controlled = _statistics(seed, n, p_positive, min_cell, action)
 
     _summary_holds(summarize(controlled), summarize(true))
 
