@@ -583,8 +583,13 @@ def control_agreement(
         rows = []
         lowest = stats.agreement[reader_tables[0][1]]
         for v in (0, 1):
-            total = lowest.counts[0][v] + lowest.counts[1][v]
-            cumulative = [total, *(stats.agreement[i].counts[1][v] for _, i in reader_tables), 0]
+            known = lowest.exact_counts()
+            total = known[0][v] + known[1][v]
+            cumulative = [
+                total,
+                *(stats.agreement[i].exact_counts()[1][v] for _, i in reader_tables),
+                0,
+            ]
             rows.append(np.diff(-np.asarray(cumulative, dtype=np.int64)))
         labelled = [
             stats.n_positive + stats.n_negative,

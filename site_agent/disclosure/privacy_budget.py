@@ -248,7 +248,7 @@ def _int_fields(s: SufficientStatistics) -> list[int]:
     out.extend((*s.histogram.positive, *s.histogram.negative, *s.histogram.all))
     out.extend((*s.calibration.count, *s.calibration.label_sum))
     for t in s.agreement:
-        out.extend(v for row in t.counts for v in row)
+        out.extend(v for row in t.exact_counts() for v in row)  # noise comes first
     return out
 
 

@@ -36,8 +36,8 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
    are released) are marked censored, with the range each can be and the class total
    (:class:`~site_agent.statistics.censored.CensoredCount`, never a count); the
    threshold's patient moments are dropped with them. Agreement cells are suppressed
-   (set to 0, listed in the note, the table marked ``censored`` so that no kappa is
-   derived from it). Histogram and calibration bins are suppressed, with further bins
+   (withheld as null, never 0; listed in the note; the table marked ``censored`` so that
+   no kappa is derived from it). Histogram and calibration bins are suppressed, with further bins
    until no row's suppressed sum is small, or merged with their neighbours until every
    row of every bin is 0 or at least ``m`` (the new edges are a subset of the old; under
    merging each class row keeps its own edges, rule 4a). Agreement tables
@@ -347,13 +347,14 @@ def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionC
 
 
 def _agreement(t: AgreementTable, m: int, path: str, note: _Note) -> AgreementTable:
-    cells = [(i, j) for i, row in enumerate(t.counts) for j, v in enumerate(row) if not _ok(v, m)]
+    known = t.exact_counts()  # before any suppression
+    cells = [(i, j) for i, row in enumerate(known) for j, v in enumerate(row) if not _ok(v, m)]
     if not cells:
         return t
     note.suppressed.extend(f"{path}.counts[{i}][{j}]" for i, j in cells)
     counts = tuple(
-        tuple(0 if (i, j) in cells else v for j, v in enumerate(row))
-        for i, row in enumerate(t.counts)
+        tuple(None if (i, j) in cells else v for j, v in enumerate(row))
+        for i, row in enumerate(known)
     )
     return t.model_copy(update={"counts": counts, "censored": True})
 

@@ -154,13 +154,22 @@ def link_agreement_suppression(release: SiteRelease, suppressed: list[str]) -> S
         tables = []
         for i, t in enumerate(stats.agreement):
             cells = hidden.get(t.raters, set())
-            counts = [list(row) for row in t.counts]
+            counts: list[list[int | None]] = [list(row) for row in t.counts]
+            linked = False
             for x, y in itertools.product(range(len(t.categories)), repeat=2):
                 name = f"{path}.agreement[{i}].counts[{x}][{y}]"
                 if (t.categories[x], t.categories[y]) in cells and name not in marked:
-                    counts[x][y] = 0
+                    counts[x][y] = None
                     suppressed.append(name)
-            tables.append(t.model_copy(update={"counts": tuple(tuple(r) for r in counts)}))
+                    linked = True
+            tables.append(
+                t.model_copy(
+                    update={
+                        "counts": tuple(tuple(r) for r in counts),
+                        "censored": t.censored or linked,
+                    }
+                )
+            )
         out.append(stats.model_copy(update={"agreement": tuple(tables)}))
     return release.model_copy(
         update={

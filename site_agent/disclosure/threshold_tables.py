@@ -36,7 +36,7 @@ def _ok(value: int, min_cell: int) -> bool:
 
 def _positive_row(table: AgreementTable) -> tuple[int, ...]:
     """Cases the model called positive, by the other rater's call (row 1 of a 2×2 table)."""
-    return table.counts[1]
+    return table.exact_counts()[1]
 
 
 def differencing_tables(

@@ -385,10 +385,11 @@ class AgreementTable(_Stat):
     raters: tuple[str, str]
     scale: Scale
     categories: tuple[int, ...]
-    counts: tuple[tuple[NonNegativeInt, ...], ...]
+    counts: tuple[tuple[NonNegativeInt | None, ...], ...]
+    """Cases per pair of calls; None for a cell a site's minimum-cell rule withheld."""
     censored: bool = False
-    """True when a site's minimum-cell rule suppressed cells of the table: those cells read
-    0 but are unknown, so ``n`` is a lower bound and no kappa is derived from the table."""
+    """True when cells of the table were withheld (None): ``n`` is then a lower bound and
+    no kappa is derived from the table."""
 
     @model_validator(mode="after")
     def _square_over_categories(self) -> AgreementTable:
@@ -401,22 +402,37 @@ class AgreementTable(_Stat):
             raise ValueError("agreement categories must be consecutive integers")
         if len(self.counts) != k or any(len(row) != k for row in self.counts):
             raise ValueError("agreement counts must be a square table over the categories")
+        if any(v is None for row in self.counts for v in row) and not self.censored:
+            raise ValueError("a table with withheld cells must be marked censored")
         return self
 
     @property
     def n(self) -> int:
-        """Number of cases both raters called."""
-        return sum(sum(row) for row in self.counts)
+        """Number of cases both raters called (those in released cells when censored)."""
+        return sum(v for row in self.counts for v in row if v is not None)
+
+    def exact_counts(self) -> tuple[tuple[int, ...], ...]:
+        """Return the counts, every cell known.
+
+        Raises
+        ------
+        InputError
+            When cells were withheld (the table is censored).
+        """
+        if any(v is None for row in self.counts for v in row):
+            raise InputError(f"cells of the {self.raters} agreement table were withheld")
+        return tuple(tuple(v for v in row if v is not None) for row in self.counts)
 
     def matrix(self) -> npt.NDArray[np.int64]:
-        """Return the counts as a ``k × k`` integer array."""
-        return np.asarray(self.counts, dtype=np.int64).reshape(len(self.categories), -1)
+        """Return the counts as a ``k × k`` integer array (every cell known; see above)."""
+        return np.asarray(self.exact_counts(), dtype=np.int64).reshape(len(self.categories), -1)
 
-    def _widened(self, low: int, high: int) -> npt.NDArray[np.int64]:
-        out = np.zeros((high - low + 1, high - low + 1), dtype=np.int64)
+    def _widened(self, low: int, high: int) -> list[list[int | None]]:
+        size = high - low + 1
+        out: list[list[int | None]] = [[0] * size for _ in range(size)]
         start = self.categories[0] - low
-        k = len(self.categories)
-        out[start : start + k, start : start + k] = self.matrix()
+        for i, row in enumerate(self.counts):
+            out[start + i][start : start + len(row)] = row
         return out
 
     def merge(self, other: AgreementTable) -> AgreementTable:
@@ -434,12 +450,15 @@ class AgreementTable(_Stat):
         high = max(self.categories[-1], other.categories[-1])
         if high - low + 1 > MAX_CATEGORIES:
             raise InputError(f"merged ordinal calls span more than {MAX_CATEGORIES} levels")
-        total = self._widened(low, high) + other._widened(low, high)
+        total = tuple(
+            tuple(None if a is None or b is None else a + b for a, b in zip(r, q, strict=True))
+            for r, q in zip(self._widened(low, high), other._widened(low, high), strict=True)
+        )
         return AgreementTable(
             raters=self.raters,
             scale=self.scale,
             categories=tuple(range(low, high + 1)),
-            counts=tuple(tuple(int(c) for c in row) for row in total),
+            counts=total,
             censored=self.censored or other.censored,
         )
 

@@ -19,6 +19,7 @@ from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
 from site_agent.exceptions import DisclosureRefused
 from site_agent.statistics.censored import CensoredCount
+from site_agent.statistics.metrics import summarize
 
 SITE = "fernbrook-county-hospital"
 
@@ -166,3 +167,43 @@ def test_counts_of_an_attribute_the_policy_does_not_allow_are_refused() -> None:
     """A release counting an attribute outside the policy's list is refused as a whole."""
     with pytest.raises(DisclosureRefused, match="subgroup_attribute_not_allowed"):
         apply_policy(_release_with_vendors({"vendor-a": 40, "vendor-b": 40}), SitePolicy())
+
+
+def test_small_agreement_cell_is_withheld_as_null_in_every_linked_table() -> None:
+    """Readers disagree on 3 cases: that cell leaves as null (unknown), never as 0.
+
+    The site's table is the sum of its levels' tables, so the cell goes from every level
+    too (complementary suppression across linked tables, common practice in statistical
+    disclosure control), every table with a withheld cell is marked censored, and no
+    kappa is derived from it. Invented cases.
+    """
+    n = 120
+    reader_a = np.array([i % 2 for i in range(n)])
+    reader_b = reader_a.copy()
+    reader_b[[1, 3, 5]] = 0  # reader b calls 0 where reader a called 1: a cell of 3
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"c{i}" for i in range(n)],
+            "patient_id": [f"p{i}" for i in range(n)],
+            "label": (np.arange(n) % 3 == 0).astype(int).astype(str),
+            "score": np.linspace(0.01, 0.99, n).round(4).astype(str),
+            "reader_a": reader_a.astype(str),
+            "reader_b": reader_b.astype(str),
+            "sex": ["F" if i < n // 2 else "M" for i in range(n)],
+        }
+    )
+    plan = EvaluationPlan(thresholds=(0.5,), histogram_edges=uniform_edges(4), subgroups=("sex",))
+    release = evaluate_site(validate_predictions(frame), plan, site=SITE, protocol_hash="0" * 64)
+
+    policed, note = apply_policy(
+        release, SitePolicy(min_cell=5, allowed_subgroup_attributes=("sex",))
+    )
+
+    populations = [policed.statistics, *(s.statistics for s in policed.subgroups)]
+    for stats in populations:
+        (table,) = [t for t in stats.agreement if t.raters == ("reader_a", "reader_b")]
+        assert table.counts[1][0] is None and table.censored
+        assert all(v is None or v == 0 or v >= 5 for row in table.counts for v in row)
+        (kappa,) = [k for k in summarize(stats).agreement if k.raters == table.raters]
+        assert kappa.unweighted.estimate is None
+    assert sum(p.endswith("counts[1][0]") for p in note.suppressed) == len(populations)
