@@ -26,6 +26,7 @@ from coordinator.pooling.cohort import (
     merge_statistics,
     pooled_auc,
     pooled_subgroup_rows,
+    site_binned_aucs,
 )
 from coordinator.pooling.comparisons import compare_score_distributions
 from coordinator.pooling.findings import study_findings
@@ -54,6 +55,7 @@ from coordinator.runs.rounds import RoundOutcome
 from site_agent.contract.protocol import StudyProtocol
 from site_agent.contract.release import SiteRelease
 from site_agent.statistics.metrics import MetricsSummary, summarize
+from site_agent.statistics.roc import HistogramAuc
 
 
 def build_results(
@@ -102,6 +104,7 @@ def build_results(
     meta: list[MetaRow] = []
     tests: list[DistributionTest] = []
     if releases:
+        metrics = _with_shared_shape(metrics, site_binned_aucs(releases))
         pooled = merge_statistics(releases)
         summary = summarize(pooled, confidence=confidence)
         summaries[POOLED] = summary
@@ -131,6 +134,18 @@ def build_results(
         findings=study_findings(outcomes, metrics, meta, info, confidence),
         notes=[*notes, pooled_vs_meta_note()],
     )
+
+
+def _with_shared_shape(rows: list[MetricRow], binned: dict[str, HistogramAuc]) -> list[MetricRow]:
+    """Replace each site's AUC from score bins by the one spread by all sites' bins."""
+    out = []
+    for row in rows:
+        auc = binned.get(row.site)
+        if row.metric == "auc" and row.method == "histogram" and row.subgroup is None and auc:
+            if auc.reason is None:
+                row = row.model_copy(update={"estimate": auc.auc, "bound": auc.bound})
+        out.append(row)
+    return out
 
 
 def _outcomes(outcome: RoundOutcome, info: Mapping[str, SiteInfo]) -> list[SiteOutcome]:

@@ -23,7 +23,7 @@ from site_agent.statistics.binned_auc import (
 )
 from site_agent.statistics.estimates import two_sided_z
 from site_agent.statistics.metrics import ProportionMetrics, summarize
-from site_agent.statistics.roc import hanley_mcneil_se
+from site_agent.statistics.roc import HistogramAuc, hanley_mcneil_se
 from site_agent.statistics.summaries import SufficientStatistics
 
 
@@ -108,6 +108,23 @@ def cohort_auc(
         reason=reason,
         bound=None if reason else bound,
     )
+
+
+def site_binned_aucs(releases: Sequence[SiteRelease]) -> dict[str, HistogramAuc]:
+    """Each site's AUC from its released bins, spread by the shape all sites' bins give.
+
+    As :func:`cohort_auc` does across sites: within a site's wide bin, the other sites'
+    narrower bins of the same class show how the scores spread
+    (:func:`~site_agent.statistics.binned_auc.shared_shape`); the bound is still the site's
+    own (the largest distance to any AUC its released bins allow).
+    """
+    positives = [r.statistics.class_bins("positive") for r in releases]
+    negatives = [r.statistics.class_bins("negative") for r in releases]
+    spread_pos, spread_neg = _shared_by_site(positives), _shared_by_site(negatives)
+    return {
+        r.site: interpolated_auc(positives[i], negatives[i], spread=(spread_pos[i], spread_neg[i]))
+        for i, r in enumerate(releases)
+    }
 
 
 def _shared_by_site(sites: Sequence[Histograms]) -> list[Histograms]:

@@ -131,8 +131,10 @@ def estimates_section(results: StudyResults) -> str:
     out += (
         '<p class="small">For all cases as one cohort the AUC compares cases across sites '
         "through their score histograms; its interval uses the Hanley–McNeil standard "
-        "error and ± gives the largest possible error from binning. Histogram AUCs of "
-        "single sites are shown with the same bound.</p>"
+        "error and ± gives the largest possible error from binning. The AUC from score "
+        "bins of a single site is shown with the same bound; within a wide bin of one "
+        "site, cases are spread as the other sites' narrower bins of the same class show "
+        "(the bound does not rest on that).</p>"
     )
     out += readers_table(results, sites, overall)
     threshold_metrics = _ordered(

@@ -99,10 +99,17 @@ def test_sites_release_histograms_on_different_bins(releases: dict[str, SiteRele
     assert len(edges) > 1
 
 
+@pytest.mark.parametrize("action", list(SmallCellAction))
 def test_pooled_auc_lies_within_its_bound_of_the_union_auc(
-    tables: dict[str, pd.DataFrame], releases: dict[str, SiteRelease]
+    tables: dict[str, pd.DataFrame],
+    raw_releases: dict[str, SiteRelease],
+    action: SmallCellAction,
 ) -> None:
     """The one-cohort AUC is within its reported binning bound of scikit-learn's on the union."""
+    policy = SitePolicy(
+        min_cell=5, small_cells=action, allowed_subgroup_attributes=("scanner_vendor",)
+    )
+    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
     results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
     pooled = next(m for m in results.metrics if m.site == POOLED and m.metric == "auc")
     union = pd.concat(tables.values())
@@ -110,6 +117,33 @@ def test_pooled_auc_lies_within_its_bound_of_the_union_auc(
     assert pooled.bound is not None
     assert abs(pooled.estimate - exact) <= pooled.bound
     assert pooled.lower < pooled.estimate < pooled.upper
+
+
+@pytest.mark.parametrize("action", list(SmallCellAction))
+def test_site_aucs_from_bins_lie_within_their_bound_of_scikit_learns(
+    tables: dict[str, pd.DataFrame],
+    raw_releases: dict[str, SiteRelease],
+    action: SmallCellAction,
+) -> None:
+    """Each site's AUC from bins (spread by all sites' bins) is within its bound of the exact.
+
+    Reference: scikit-learn ``roc_auc_score`` on the site's scores. Under either policy
+    action: merged bins, or suppressed bins counted as unknown within their span.
+    """
+    policy = SitePolicy(
+        min_cell=5, small_cells=action, allowed_subgroup_attributes=("scanner_vendor",)
+    )
+    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
+    results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
+    for name, table in tables.items():
+        row = next(
+            m
+            for m in results.metrics
+            if m.site == name and m.metric == "auc" and m.method == "histogram" and not m.subgroup
+        )
+        exact = roc_auc_score(table["label"].astype(int), table["score"].astype(float))
+        assert row.bound is not None
+        assert abs(row.estimate - exact) <= row.bound, name
 
 
 def test_pooled_sensitivity_equals_recall_on_the_union(
