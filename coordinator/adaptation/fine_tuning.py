@@ -213,11 +213,19 @@ def change_findings(
         if not changes or not math.isfinite(changes[-1].estimate):
             continue
         row = changes[-1]
-        verb = "raised" if row.estimate >= 0 else "lowered"
+        # Only an interval wholly on one side of 0 shows a direction.
+        if row.lower > 0 or row.upper < 0:
+            verb = "raised" if row.estimate > 0 else "lowered"
+            said = f"{verb} AUC at {site} by {abs(row.estimate):.3f}"
+        else:
+            said = (
+                f"did not measurably change AUC at {site}: {row.estimate:+.3f}, an interval "
+                "that includes no change"
+            )
         out.append(
-            f"Local adaptation {verb} AUC at {site} by {abs(row.estimate):.3f} "
-            f"(95% CI {row.lower:+.3f} to {row.upper:+.3f}; paired DeLong on its held-out "
-            f"test set, n = {count_label(row.n_cases)} local cases, {row.repeats} seeds)."
+            f"Local adaptation {said} (95% CI {row.lower:+.3f} to {row.upper:+.3f}; paired "
+            f"DeLong on its held-out test set, n = {count_label(row.n_cases)} local cases, "
+            f"{row.repeats} seeds)."
         )
     return out
 

@@ -153,13 +153,16 @@ def _with_changes(
 
 
 def test_change_rows_and_findings_cover_every_degraded_site() -> None:
-    """Both sites below the reference minus margin get a finding with their change and CI."""
+    """Every site below the reference minus margin gets a finding with its change and CI."""
     releases = {
         "alder-bay": _with_changes(
             _release("alder-bay", {0: [0.7], 10: [0.8, 0.82]}), [(0.1, 0.001), (0.12, 0.002)]
         ),
         "brightwater": _with_changes(
             _release("brightwater", {0: [0.7], 10: [0.69, 0.66]}), [(-0.01, 0.001), (-0.04, 0.001)]
+        ),
+        "cedar-point": _with_changes(
+            _release("cedar-point", {0: [0.7], 10: [0.6, 0.58]}), [(-0.1, 0.0004), (-0.12, 0.0004)]
         ),
     }
     # both before AUCs are 0.8 (see _release); reference 0.9 and margin 0.02 make both degraded
@@ -172,24 +175,28 @@ def test_change_rows_and_findings_cover_every_degraded_site() -> None:
     found = change_findings(rows, lines, reference=0.9, margin=0.02)
 
     changes = {r.site: r for r in rows if r.metric == AUC_CHANGE}
-    assert set(changes) == {"alder-bay", "brightwater"}  # not pooled
+    assert set(changes) == {"alder-bay", "brightwater", "cedar-point"}  # not pooled
     for site, pairs in (
         ("alder-bay", [(0.1, 0.001), (0.12, 0.002)]),
         ("brightwater", [(-0.01, 0.001), (-0.04, 0.001)]),
+        ("cedar-point", [(-0.1, 0.0004), (-0.12, 0.0004)]),
     ):
         expected = combine_differences([p[0] for p in pairs], [p[1] for p in pairs])
         assert changes[site].estimate == pytest.approx(np.mean([p[0] for p in pairs]))
         assert (changes[site].lower, changes[site].upper) == pytest.approx(
             (expected.lower, expected.upper)
         )
-    a, b = changes["alder-bay"], changes["brightwater"]
+    a, b, c = changes["alder-bay"], changes["brightwater"], changes["cedar-point"]
+    # A direction is stated only when the interval excludes 0 (common practice).
+    assert a.lower > 0 and b.lower < 0 < b.upper and c.upper < 0
+    tail = "paired DeLong on its held-out test set, n = 10 local cases, 2 seeds)."
     assert found == [
         f"Local adaptation raised AUC at alder-bay by {a.estimate:.3f} (95% CI {a.lower:+.3f} "
-        f"to {a.upper:+.3f}; paired DeLong on its held-out test set, n = 10 local cases, "
-        "2 seeds).",
-        f"Local adaptation lowered AUC at brightwater by {-b.estimate:.3f} (95% CI "
-        f"{b.lower:+.3f} to {b.upper:+.3f}; paired DeLong on its held-out test set, n = 10 "
-        "local cases, 2 seeds).",
+        f"to {a.upper:+.3f}; {tail}",
+        f"Local adaptation did not measurably change AUC at brightwater: {b.estimate:+.3f}, "
+        f"an interval that includes no change (95% CI {b.lower:+.3f} to {b.upper:+.3f}; {tail}",
+        f"Local adaptation lowered AUC at cedar-point by {-c.estimate:.3f} (95% CI "
+        f"{c.lower:+.3f} to {c.upper:+.3f}; {tail}",
     ]
     # a site at the reference is not degraded: no finding for it
     assert change_findings(rows, lines, reference=0.81, margin=0.02) == []
