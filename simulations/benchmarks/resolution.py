@@ -84,6 +84,35 @@ def run_scale(name: str, edges: tuple[float, ...] | None, work: Path) -> None:
         )
 
 
+def range_half_width(edges: tuple[float, ...], work: Path) -> float:
+    """Half-width of the range of one-cohort AUCs the released bins allow.
+
+    Runs the default scenario's evaluation round again and takes, over every pair of
+    cases from two different sites, the share of pairs whose bins overlap, halved (the
+    within-site pairs are exact): the bound a midpoint estimate would carry.
+    """
+    from coordinator.runs.engines import run_study
+    from simulations.rehearsal import prepare_study
+    from site_agent.statistics.roc import mixed_histogram_auc
+
+    study = prepare_study(default_scenario(), work / "parts", histogram_edges=edges)
+    outcome = run_study(
+        study.protocol, study.bundle_path, study.settings, engine="inprocess", workdir=work
+    )
+    stats = [r.statistics for r in outcome.rounds[-1].releases.values()]
+    positives = [s.class_bins("positive") for s in stats]
+    negatives = [s.class_bins("negative") for s in stats]
+    big_p = sum(s.n_positive for s in stats)
+    big_n = sum(s.n_negative for s in stats)
+    total = 0.0
+    for i, pos in enumerate(positives):
+        for j, neg in enumerate(negatives):
+            if i != j and stats[i].n_positive and stats[j].n_negative:
+                pair = mixed_histogram_auc(pos, neg)
+                total += pair.bound * pair.n_positive * pair.n_negative
+    return total / (big_p * big_n)
+
+
 def main() -> None:
     """Run the benchmark and print its tables."""
     parser = argparse.ArgumentParser(description=f"Score resolution benchmark. {RESEARCH_NOTICE}")
@@ -100,6 +129,10 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         for name in names:
             run_scale(name, SCALES[name], Path(tmp))
+        first = SCALES[names[0]]
+        if first is not None:
+            half = range_half_width(first, Path(tmp) / "parts")
+            print(f"\n{names[0]}: half-width of the one-cohort AUC range the bins allow {half:.4f}")
     print(f"\n{RESEARCH_NOTICE}")
 
 
