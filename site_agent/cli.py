@@ -254,7 +254,7 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
             weighted = k.scale == "ordinal"
             kappa.add_row(
                 " vs ".join(k.raters),
-                str(k.n),
+                f"≥ {k.n} (cells withheld)" if k.censored else str(k.n),
                 _ci(k.unweighted),
                 _ci(k.linear) if weighted else "",
                 _ci(k.quadratic) if weighted else "",

@@ -140,6 +140,8 @@ class KappaMetrics(_Summary):
     scale: Scale
     categories: tuple[int, ...]
     n: int
+    """Cases in the table's released cells: a lower bound when ``censored``."""
+    censored: bool = False
     unweighted: EstimateRecord
     linear: EstimateRecord
     quadratic: EstimateRecord
@@ -381,6 +383,7 @@ def _kappas(table: AgreementTable, confidence: float) -> KappaMetrics:
             scale=table.scale,
             categories=table.categories,
             n=table.n,
+            censored=True,
             unweighted=withheld,
             linear=withheld.model_copy(update={"method": "cohen-kappa-linear"}),
             quadratic=withheld.model_copy(update={"method": "cohen-kappa-quadratic"}),
