@@ -338,21 +338,13 @@ def _linear_predictor(
         if not math.isfinite(lp_mean):
             raise InputError(f"lp_mean must be a finite number, got {lp_mean}")
         check_positive(lp_sd, "lp_sd")
-        x, w = _normal_grid(lp_mean, lp_sd)
-        return _LinearPredictor(
-            lp_mean,
-            lp_sd,
-            _slope_variance_per_case(x, w),
-            f"Normal({lp_mean:.3f}, {lp_sd:.3f}²) as given",
-        )
-    mu, sigma = linear_predictor_distribution(prevalence, c_statistic)
+        mu, sigma = lp_mean, lp_sd
+        how = f"Normal({mu:.3f}, {sigma:.3f}²) as given"
+    else:
+        mu, sigma = linear_predictor_distribution(prevalence, c_statistic)
+        how = f"Normal({mu:.3f}, {sigma:.3f}²): mean risk {prevalence:g}, C {c_statistic:g}"
     x, w = _normal_grid(mu, sigma)
-    return _LinearPredictor(
-        mu,
-        sigma,
-        _slope_variance_per_case(x, w),
-        f"Normal({mu:.3f}, {sigma:.3f}²): mean risk {prevalence:g}, C {c_statistic:g}",
-    )
+    return _LinearPredictor(mu, sigma, _slope_variance_per_case(x, w), how)
 
 
 def _checked_values(lp_values: ArrayLike) -> NDArray[np.float64]:

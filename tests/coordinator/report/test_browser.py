@@ -7,63 +7,20 @@ CI machine without a browser cannot pass silently.
 
 from __future__ import annotations
 
-import os
-import signal
 import struct
-import subprocess
-import sys
 from html.parser import HTMLParser
 from pathlib import Path
 
+import headless_chromium
 import pytest
+from headless_chromium import require_chromium, run_chromium
 from test_study_report import breast_cancer_results
 
 from coordinator.report.study_report import render_report
 
 pytestmark = pytest.mark.browser
 
-CHROMIUM = Path("/usr/bin/chromium")
-TIMEOUT_SECONDS = 120
 WINDOW = (1280, 4000)
-_FLAGS = (
-    "--headless",
-    "--no-sandbox",
-    "--disable-gpu",
-    "--disable-quic",
-    "--no-first-run",
-    "--disable-background-networking",
-    "--disable-component-update",
-    "--disable-sync",
-)
-
-
-def _require_chromium() -> None:
-    if CHROMIUM.exists():
-        return
-    message = f"{CHROMIUM} is missing; run .ci/install-browser"
-    if os.environ.get("CI"):
-        pytest.fail(message)
-    pytest.skip(message)
-
-
-def _chromium(profile: Path, *args: str) -> str:
-    """Run Chromium once, kill its process group if it hangs, and return its stdout."""
-    command = [str(CHROMIUM), *_FLAGS, f"--user-data-dir={profile}", *args]
-    with subprocess.Popen(
-        command,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        start_new_session=True,
-    ) as process:
-        try:
-            out, err = process.communicate(timeout=TIMEOUT_SECONDS)
-        except subprocess.TimeoutExpired:
-            os.killpg(process.pid, signal.SIGKILL)
-            process.communicate()
-            pytest.fail(f"chromium did not finish within {TIMEOUT_SECONDS} s")
-    assert process.returncode == 0, err[-2000:]
-    return out
 
 
 class _Counter(HTMLParser):
@@ -79,13 +36,13 @@ class _Counter(HTMLParser):
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    _require_chromium()
+    require_chromium()
     return render_report(breast_cancer_results(), tmp_path_factory.mktemp("browser") / "r.html")
 
 
 def test_chromium_dom_holds_every_figure_and_table(report: Path, tmp_path: Path) -> None:
     """The DOM Chromium builds from the file holds the report's SVG figures and tables."""
-    dom = _chromium(tmp_path / "profile", "--dump-dom", report.as_uri())
+    dom = run_chromium(tmp_path / "profile", "--dump-dom", report.as_uri())
     counter = _Counter()
     counter.feed(dom)
     results = breast_cancer_results()
@@ -102,7 +59,7 @@ def test_chromium_dom_holds_every_figure_and_table(report: Path, tmp_path: Path)
 def test_chromium_screenshot_is_a_png_of_the_window_size(report: Path, tmp_path: Path) -> None:
     """A full-window screenshot of the report is a non-empty PNG of the requested size."""
     png = tmp_path / "report.png"
-    _chromium(
+    run_chromium(
         tmp_path / "profile",
         f"--screenshot={png}",
         f"--window-size={WINDOW[0]},{WINDOW[1]}",
@@ -118,15 +75,15 @@ def test_chromium_screenshot_is_a_png_of_the_window_size(report: Path, tmp_path:
 
 def test_missing_browser_fails_under_ci(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
     """With CI set, a missing Chromium fails the test run instead of skipping it."""
-    monkeypatch.setattr(sys.modules[__name__], "CHROMIUM", tmp_path / "no-chromium")
+    monkeypatch.setattr(headless_chromium, "CHROMIUM", tmp_path / "no-chromium")
     monkeypatch.setenv("CI", "true")
     with pytest.raises(pytest.fail.Exception, match="install-browser"):
-        _require_chromium()
+        require_chromium()
 
 
 def test_missing_browser_skips_locally(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
     """Without CI, a missing Chromium skips the browser tests."""
-    monkeypatch.setattr(sys.modules[__name__], "CHROMIUM", tmp_path / "no-chromium")
+    monkeypatch.setattr(headless_chromium, "CHROMIUM", tmp_path / "no-chromium")
     monkeypatch.delenv("CI", raising=False)
     with pytest.raises(pytest.skip.Exception, match="install-browser"):
-        _require_chromium()
+        require_chromium()
