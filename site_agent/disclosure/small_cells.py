@@ -16,8 +16,10 @@ Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1
 3. Refused: a small site total (cases, positives, negatives, patients); a small total in
    any subgroup level. A small number of pending labels is withheld instead (pending cases
    leave the release: their counts, the ``all`` histogram row and the agreement tables,
-   which count them too, are dropped). Pending cases are counted in the site's ``all``
-   row only; a subgroup's ``all`` row counts its labelled cases (noted as withheld).
+   which count them too, are dropped), from the site and every level at once: the levels'
+   pending counts add up to the site's, so withholding one alone would not hide it.
+   Pending cases are counted in the site's ``all`` row only; a subgroup's ``all`` row
+   counts its labelled cases (noted as withheld).
 4. Refused: subgroup combinations. The cases of an attribute in no released level must
    not be small, and no signed sum of one union of levels per attribute and the site
    total may be small (nested levels, overlaps of three attributes;
@@ -196,9 +198,15 @@ def apply_policy(
     release, partition = control_partition(release, m, policy.small_cells)
     note.absorb(partition)
     stats = release.statistics
+    # Pending counts of the site and its levels add up: one small count withholds them all.
+    pending_out = any(
+        not _ok(s.n_pending, m) for s in (stats, *(sub.statistics for sub in release.subgroups))
+    )
     controlled = release.model_copy(
         update={
-            "statistics": _controlled(stats, m, policy.small_cells, "statistics", note),
+            "statistics": _controlled(
+                stats, m, policy.small_cells, "statistics", note, pending_out=pending_out
+            ),
             "subgroups": tuple(
                 sub.model_copy(
                     update={
@@ -208,6 +216,7 @@ def apply_policy(
                             policy.small_cells,
                             f"subgroups[{i}].statistics",
                             note,
+                            pending_out=pending_out,
                         )
                     }
                 )
@@ -282,13 +291,23 @@ def _check_resolution(stats: SufficientStatistics) -> None:
 
 
 def _controlled(
-    stats: SufficientStatistics, m: int, action: SmallCellAction, path: str, note: _Note
+    stats: SufficientStatistics,
+    m: int,
+    action: SmallCellAction,
+    path: str,
+    note: _Note,
+    *,
+    pending_out: bool,
 ) -> SufficientStatistics:
-    """Apply rule 5 (small cells) and the pending-case rule to one set of statistics."""
+    """Apply rule 5 (small cells) and the pending-case rule to one set of statistics.
+
+    ``pending_out``: some population of the release has a small pending count, so every
+    population withholds its pending cases (their counts add up across the levels).
+    """
     histogram = stats.histogram
     n_observations, n_pending = stats.n_observations, stats.n_pending
     agreement = stats.agreement
-    if not _ok(n_pending, m):
+    if pending_out and n_pending:
         note.withheld.append(f"{path}.pending")
         if agreement:
             # Agreement tables count pending cases too: their totals would give the count away.
