@@ -243,6 +243,52 @@ def test_merge_rebins_histograms_to_shared_edges() -> None:
     )
 
 
+def test_class_rows_on_their_own_edges_merge_exactly_row_by_row() -> None:
+    """Each class keeps its own edges; a merge re-bins each row to the edges both kept.
+
+    Reference: numpy.histogram of the union on each row's shared edges.
+    """
+    rng = np.random.default_rng(8)
+    scores = rng.random(80).round(4)
+    labels = rng.integers(0, 2, 80)
+    grid = uniform_edges(20)
+
+    def site(rows: slice, positive: tuple[float, ...], negative: tuple[float, ...]) -> Any:
+        s, y = scores[rows], labels[rows]
+        full = ScoreHistogram(
+            edges=grid,
+            positive=tuple(int(v) for v in np.histogram(s[y == 1], bins=np.array(grid))[0]),
+            negative=tuple(int(v) for v in np.histogram(s[y == 0], bins=np.array(grid))[0]),
+            all=tuple(int(v) for v in np.histogram(s, bins=np.array(grid))[0]),
+        )
+        both = tuple(sorted(set(positive) & set(negative)))
+        return full.with_edges(both, positive, negative)
+
+    a = site(slice(0, 40), uniform_edges(20), uniform_edges(5))
+    b = site(slice(40, 80), uniform_edges(10), uniform_edges(10))
+    merged = a.merge(b)
+
+    for name, label, edges in (
+        ("positive", 1, uniform_edges(10)),
+        ("negative", 0, uniform_edges(5)),
+    ):
+        assert merged.class_edges(name) == edges
+        expected, _ = np.histogram(scores[labels == label], bins=np.array(edges))
+        assert getattr(merged, name) == tuple(int(v) for v in expected)
+    assert merged.edges == uniform_edges(5)
+    assert merged.all == tuple(
+        int(v) for v in np.histogram(scores, bins=np.array(uniform_edges(5)))[0]
+    )
+    with pytest.raises(ValidationError):  # the all row may not be finer than a class row
+        ScoreHistogram(
+            edges=uniform_edges(10),
+            positive=(1,) * 5,
+            negative=(1,) * 10,
+            all=(1,) * 10,
+            positive_edges=uniform_edges(5),
+        )
+
+
 def test_histograms_without_a_shared_interior_edge_merge_into_one_bin() -> None:
     """Binnings that share only 0 and 1 merge exactly into the single bin [0, 1]."""
     p = validate_predictions(
