@@ -5,6 +5,9 @@ lets it leave, with a :class:`DisclosureNote` of what was changed; the gate
 (:func:`site_agent.disclosure.gate.disclosure_mod`) calls it on every evaluation and
 monitoring reply and sends the note beside the release.
 
+(Just over 500 lines for a reason: the rules below run in one pass over one release, and
+each depends on what the earlier ones withheld; the list of rules is their one statement.)
+
 Rules enforced on a release (``m`` is the policy's ``min_cell``; "small" means 1 to m−1)
 -------------------------------------------------------------------------------------
 1. Refused: a subgroup attribute the policy does not allow (checked on the request too,
