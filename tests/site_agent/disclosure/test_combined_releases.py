@@ -21,7 +21,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import pytest
-from hypothesis import given, settings
+from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
 from site_agent.contract.protocol import EvaluationPlan, uniform_edges
@@ -568,6 +568,44 @@ def test_attack_level_empty_on_one_side_of_a_site_only_cut_is_merged() -> None:
         assert isolated_sets(_release_sets(frame, controlled, note), M) == []
 
 
+def _random_site(
+    seed: int, n: int, pending: int, attributes: dict[str, int]
+) -> tuple[pd.DataFrame, npt.NDArray[np.float64]]:
+    """Return an invented site with random scores, labels, pending labels and attributes."""
+    rng = np.random.default_rng(seed)
+    labels = rng.random(n) < 0.4
+    scores = np.clip(rng.normal(0.35 + 0.3 * labels, 0.2), 0.001, 0.999).round(3)
+    label_values = labels.astype(float)
+    label_values[:pending] = np.nan  # reference standard pending
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"r{i}" for i in range(n)],
+            "patient_id": [f"rp{i}" for i in range(n)],
+            "label": label_values,
+            "score": scores,
+            **{
+                name: rng.choice([f"{name}{k}" for k in range(levels)], size=n)
+                for name, levels in attributes.items()
+            },
+        }
+    )
+    return frame, rng.uniform(0.1, 0.9, 12)
+
+
+def _assert_nothing_isolated(
+    frame: pd.DataFrame, plan: EvaluationPlan, action: SmallCellAction
+) -> None:
+    raw = _evaluate(frame, plan)
+    policy = SitePolicy(min_cell=M, small_cells=action, allowed_subgroup_attributes=plan.subgroups)
+    try:
+        controlled, note = apply_policy(raw, policy)
+    except DisclosureRefused:
+        event("refused as a whole")
+        return  # nothing left the site
+    event("released and checked")
+    assert isolated_sets(_release_sets(frame, controlled, note), M) == []
+
+
 @settings(max_examples=60, deadline=None)
 @given(
     seed=st.integers(0, 2**32 - 1),
@@ -595,29 +633,39 @@ def test_random_designs_isolate_nothing(
     withheld tables), no set of 1..m-1 cases is a linear combination of released counts
     (the brute-force standard of :func:`isolated_sets`), or the release is refused.
     """
-    rng = np.random.default_rng(seed)
-    labels = rng.random(n) < 0.4
-    scores = np.clip(rng.normal(0.35 + 0.3 * labels, 0.2), 0.001, 0.999).round(3)
-    label_values = labels.astype(float)
-    label_values[:pending] = np.nan  # reference standard pending
-    frame = pd.DataFrame(
-        {
-            "case_id": [f"r{i}" for i in range(n)],
-            "patient_id": [f"rp{i}" for i in range(n)],
-            "label": label_values,
-            "score": scores,
-            "unit": rng.choice([f"u{k}" for k in range(levels)], size=n),
-        }
-    )
+    frame, draws = _random_site(seed, n, pending, {"unit": levels})
     plan = EvaluationPlan(
-        thresholds=tuple(sorted({round(float(t), 3) for t in rng.uniform(0.1, 0.9, thresholds)})),
+        thresholds=tuple(sorted({round(float(t), 3) for t in draws[:thresholds]})),
         histogram_edges=uniform_edges(bins),
         subgroups=("unit",),
     )
-    raw = _evaluate(frame, plan)
-    policy = SitePolicy(min_cell=M, small_cells=action, allowed_subgroup_attributes=("unit",))
-    try:
-        controlled, note = apply_policy(raw, policy)
-    except DisclosureRefused:
-        return  # refused as a whole: nothing left the site
-    assert isolated_sets(_release_sets(frame, controlled, note), M) == []
+    _assert_nothing_isolated(frame, plan, action)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n=st.integers(200, 400),
+    levels=st.tuples(st.integers(2, 3), st.integers(2, 3)),
+    pending=st.integers(0, 15),
+    bins=st.sampled_from([5, 10, 20]),
+    thresholds=st.integers(1, 8),
+    action=st.sampled_from(list(SmallCellAction)),
+)
+def test_random_designs_with_two_attributes_isolate_nothing(
+    seed: int,
+    n: int,
+    levels: tuple[int, int],
+    pending: int,
+    bins: int,
+    thresholds: int,
+    action: SmallCellAction,
+) -> None:
+    """As above with two crossing attributes (one shared partition for both, rule 4)."""
+    frame, draws = _random_site(seed, n, pending, {"a": levels[0], "b": levels[1]})
+    plan = EvaluationPlan(
+        thresholds=tuple(sorted({round(float(t), 3) for t in draws[:thresholds]})),
+        histogram_edges=uniform_edges(bins),
+        subgroups=("a", "b"),
+    )
+    _assert_nothing_isolated(frame, plan, action)
