@@ -195,7 +195,21 @@ def _distribution_tests(releases: Sequence[SiteRelease]) -> list[DistributionTes
             p_value=t.p_value,
             n=t.n,
             sites=t.groups,
-            reason=t.reason,
+            reason=t.reason or _left_out(releases, cases),
         )
         for cases, t in tests.items()
     ]
+
+
+def _left_out(releases: Sequence[SiteRelease], cases: str) -> str | None:
+    """Say how many cases bins a site suppressed keep out of a test on released bins."""
+    hidden = 0
+    for r in releases:
+        s, h = r.statistics, r.statistics.histogram
+        released = {"all cases": (s.n_observations, h.all), "positives": (s.n_positive, h.positive)}
+        released["negatives"] = (s.n_negative, h.negative)
+        total, row = released[cases]
+        hidden += max(0, total - sum(row))
+    if not hidden:
+        return None
+    return f"without {hidden} cases in score bins a site suppressed (their place is unknown)"

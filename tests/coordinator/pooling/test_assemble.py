@@ -209,6 +209,29 @@ def test_score_distribution_test_equals_scipy_kruskal_on_binned_scores(
     reference = kruskal(*binned)  # scipy reference, tie-corrected
     assert test.statistic == pytest.approx(reference.statistic, rel=1e-9)
     assert test.p_value == pytest.approx(reference.pvalue, rel=1e-9)
+    assert test.reason is None  # nothing suppressed: every case is in the test
+
+
+def test_score_distribution_test_says_how_many_suppressed_cases_it_leaves_out(
+    raw_releases: dict[str, SiteRelease],
+) -> None:
+    """Under the suppress action the test runs on released bins and says what it lacks."""
+    policy = SitePolicy(min_cell=5, allowed_subgroup_attributes=("scanner_vendor",))
+    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
+    results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
+    left_out = []
+    for test in results.distribution_tests:
+        row = {"all cases": "all", "positives": "positive", "negatives": "negative"}[test.cases]
+        total = {"all": "n_observations", "positive": "n_positive", "negative": "n_negative"}
+        hidden = sum(
+            getattr(r.statistics, total[row]) - sum(getattr(r.statistics.histogram, row))
+            for r in releases.values()
+        )
+        assert test.n + hidden == sum(getattr(r.statistics, total[row]) for r in releases.values())
+        if hidden:
+            assert test.reason is not None and f"without {hidden} cases" in test.reason
+        left_out.append(hidden)
+    assert max(left_out) > 0  # the policy did suppress bins here
 
 
 def test_pooled_subgroup_sensitivity_equals_recall_on_that_subgroup_of_the_union(
