@@ -84,7 +84,7 @@ def adaptation_curves_svg(results: StudyResults) -> str:
 def reference_lines_svg(results: StudyResults) -> str:
     """Return a per-site chart of the four reference lines' AUCs with intervals."""
     sites = sorted({r.site for r in results.reference_lines})
-    fig, ax = plt.subplots(figsize=(7.5, 0.55 * len(sites) * 4 / 3 + 1.2))
+    fig, ax = plt.subplots(figsize=(7.5, 0.55 * len(sites) * 4 / 3 + 1.6), layout="constrained")
     for j, line in enumerate(REFERENCE_LINES):
         rows = {r.site: r for r in results.reference_lines if r.line == line}
         ys, xs, lows, highs = [], [], [], []
@@ -108,8 +108,8 @@ def reference_lines_svg(results: StudyResults) -> str:
     ax.set_yticks([i * 5 + 1.5 for i in range(len(sites))], sites, fontsize=8)
     ax.invert_yaxis()
     ax.set_xlabel("AUC on the site's held-out local test set (95% CI)")
-    ax.legend(fontsize=7, loc="lower left")
-    fig.tight_layout()
+    # Below the panel, so that it never covers a site's intervals.
+    fig.legend(fontsize=7, loc="outside lower center", ncol=2, frameon=False)
     return svg(fig)
 
 
@@ -182,10 +182,11 @@ def _shift_descriptions(results: StudyResults) -> str:
         return ""
     items = "".join(f"<li>{_e(s.site)}: {_e(s.description)}</li>" for s in described)
     return (
-        "<p>What each site's curve responds to, as the site is described: shifts of gain "
-        "and offset are undone by a refit on a few cases; unreliable features and "
-        "measurement noise destroy information, so the curve keeps rising over tens to "
-        f"hundreds of cases.</p><ul>{items}</ul>"
+        "<p>What each site's curve responds to, as the site is described. A shift a refit "
+        "can undo (a gain, an offset, a contrast change) should be repaired by a few local "
+        "cases; a shift that destroys information (unreliable features, noise, blur, lost "
+        "resolution) is repaired slowly over tens to hundreds of cases, or not at all.</p>"
+        f"<ul>{items}</ul>"
     )
 
 
