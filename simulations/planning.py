@@ -58,16 +58,17 @@ from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, model_validator
+from pydantic import Field, model_validator
 from scipy import stats
 
 from coordinator.monitoring.control_charts import DEFAULT_CUSUM_H, DEFAULT_CUSUM_K, cusum_chart
 from coordinator.pooling.effect_sizes import logit_auc
 from coordinator.pooling.meta_analysis import meta_analyze
+from coordinator.pooling.records import Number, ResultRecord
 from coordinator.pooling.study_results import StudyResults
 from site_agent.exceptions import InputError
 from site_agent.notices import RESEARCH_NOTICE
@@ -85,20 +86,7 @@ Verdict = Literal["yes", "no", "uncertain", "undefined"]
 _NAN = float("nan")
 
 
-def _none_is_nan(value: Any) -> Any:
-    return _NAN if value is None else value
-
-
-Number = Annotated[float, BeforeValidator(_none_is_nan)]
-
-
-class _Record(BaseModel):
-    model_config = ConfigDict(
-        frozen=True, extra="forbid", allow_inf_nan=True, ser_json_inf_nan="null"
-    )
-
-
-class PlanSettings(_Record):
+class PlanSettings(ResultRecord):
     """Everything a planning run depends on; with the seed, enough to reproduce it."""
 
     site_counts: tuple[int, ...] = DEFAULT_SITE_COUNTS
@@ -137,7 +125,7 @@ class PlanSettings(_Record):
         return self
 
 
-class Targets(_Record):
+class Targets(ResultRecord):
     """What a design must reach; ``None``: not asked for."""
 
     max_ci_width: float | None = Field(default=None, gt=0.0)
@@ -146,7 +134,7 @@ class Targets(_Record):
     max_delay: float | None = Field(default=None, gt=0.0, description="Windows.")
 
 
-class McValue(_Record):
+class McValue(ResultRecord):
     """A Monte Carlo estimate with its interval over replicates.
 
     ``censored`` replicates never reached the event (no alarm within the horizon); then
@@ -162,7 +150,7 @@ class McValue(_Record):
     method: str
 
 
-class CellResult(_Record):
+class CellResult(ResultRecord):
     """One design: ``sites`` sites with ``cases_per_site`` cases each."""
 
     sites: int
@@ -179,7 +167,7 @@ class CellResult(_Record):
     meets_targets: bool | None = None
 
 
-class PlanResult(_Record):
+class PlanResult(ResultRecord):
     """A planning grid and what it says about each design."""
 
     created_at: datetime

@@ -52,11 +52,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Annotated, Any, Literal
+from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
-from pydantic import BaseModel, BeforeValidator, ConfigDict
 from scipy import stats
 
 from coordinator.pooling.effect_sizes import FloatArray, Transform, as_vector
@@ -67,6 +66,7 @@ from coordinator.pooling.heterogeneity import (
     tau2_dersimonian_laird,
     tau2_reml,
 )
+from coordinator.pooling.records import Number, ResultRecord
 from site_agent.exceptions import InputError
 
 Method = Literal["dl", "reml", "pm", "fixed"]
@@ -84,21 +84,7 @@ PREDICTION_CONVENTION = (
 _NAN = float("nan")
 
 
-def _none_is_nan(value: Any) -> Any:
-    return _NAN if value is None else value
-
-
-Number = Annotated[float, BeforeValidator(_none_is_nan)]
-"""A float written to JSON as ``null`` when undefined (NaN) and read back as NaN."""
-
-
-class _Record(BaseModel):
-    model_config = ConfigDict(
-        frozen=True, extra="forbid", allow_inf_nan=True, ser_json_inf_nan="null"
-    )
-
-
-class SiteWeight(_Record):
+class SiteWeight(ResultRecord):
     """One site's estimate, its confidence interval and its share of the pooled weight."""
 
     label: str
@@ -109,7 +95,7 @@ class SiteWeight(_Record):
     weight_percent: Number
 
 
-class BackTransformed(_Record):
+class BackTransformed(ResultRecord):
     """Pooled results mapped back from the analysis scale (expit for logit, exp for log)."""
 
     estimate: Number
@@ -119,7 +105,7 @@ class BackTransformed(_Record):
     prediction_upper: Number
 
 
-class MetaAnalysis(_Record):
+class MetaAnalysis(ResultRecord):
     """Result of :func:`meta_analyze`; all values are on the analysis scale ``scale``.
 
     ``i2`` is a fraction in [0, 1], not a percentage. ``lower``/``upper`` use the

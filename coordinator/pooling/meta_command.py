@@ -9,8 +9,6 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-from pydantic import BaseModel, ConfigDict
-
 from coordinator.pooling.meta_analysis import (
     METHOD_LABELS,
     MetaAnalysis,
@@ -19,6 +17,7 @@ from coordinator.pooling.meta_analysis import (
     meta_analyze,
 )
 from coordinator.pooling.meta_inputs import Measure, SiteInputs
+from coordinator.pooling.records import ResultRecord
 from site_agent.notices import RESEARCH_NOTICE
 
 _MEASURE_NAMES: dict[str, str] = {
@@ -30,12 +29,8 @@ _MEASURE_NAMES: dict[str, str] = {
 }
 
 
-class MetaCommandResult(BaseModel):
+class MetaCommandResult(ResultRecord):
     """What ``sitepool meta --json`` prints: both models, the input notes and the notice."""
-
-    model_config = ConfigDict(
-        frozen=True, extra="forbid", allow_inf_nan=True, ser_json_inf_nan="null"
-    )
 
     source: str
     measure: Measure

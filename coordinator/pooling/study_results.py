@@ -10,29 +10,15 @@ from __future__ import annotations
 
 from datetime import datetime
 from pathlib import Path
-from typing import Annotated, Any
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+from pydantic import Field
 
+from coordinator.pooling.records import Number, ResultRecord
 from site_agent.notices import RESEARCH_NOTICE
 from site_agent.statistics.censored import CensoredCount
 
 
-def _none_is_nan(value: Any) -> Any:
-    return float("nan") if value is None else value
-
-
-Number = Annotated[float, BeforeValidator(_none_is_nan)]
-"""A float that is written to JSON as ``null`` when undefined (NaN) and read back as NaN."""
-
-
-class _Record(BaseModel):
-    model_config = ConfigDict(
-        frozen=True, extra="forbid", allow_inf_nan=True, ser_json_inf_nan="null"
-    )
-
-
-class MetricRow(_Record):
+class MetricRow(ResultRecord):
     """One estimate with its interval, for one site (or the pool) and one metric."""
 
     site: str = Field(description="Site name, or 'pooled' for the merged statistics.")
@@ -58,7 +44,7 @@ class MetricRow(_Record):
     )
 
 
-class CurvePoints(_Record):
+class CurvePoints(ResultRecord):
     """An ROC curve (x = 1 - specificity, y = sensitivity) or a calibration curve."""
 
     site: str
@@ -73,7 +59,7 @@ class CurvePoints(_Record):
     )
 
 
-class TwoByTwo(_Record):
+class TwoByTwo(ResultRecord):
     """Cross tabulation of the index test (at a threshold) by the reference standard."""
 
     site: str
@@ -85,7 +71,7 @@ class TwoByTwo(_Record):
     """A cell a site's policy suppressed is a :class:`CensoredCount` (a range), never 0."""
 
 
-class ParticipantFlow(_Record):
+class ParticipantFlow(ResultRecord):
     """Flow of observations at one site (STARD 2015 item 19)."""
 
     site: str
@@ -98,7 +84,7 @@ class ParticipantFlow(_Record):
     resampled: int = Field(default=0, description="Simulation only: resampled cases.")
 
 
-class MetaRow(_Record):
+class MetaRow(ResultRecord):
     """One random-effects (or fixed-effect) meta-analysis across sites."""
 
     metric: str
@@ -122,7 +108,7 @@ class MetaRow(_Record):
     )
 
 
-class DistributionTest(_Record):
+class DistributionTest(ResultRecord):
     """A test across sites of whether scores follow one distribution (Kruskal–Wallis)."""
 
     cases: str = Field(description="'all cases', 'positives' or 'negatives'.")
@@ -135,7 +121,7 @@ class DistributionTest(_Record):
     reason: str | None = None
 
 
-class SiteOutcome(_Record):
+class SiteOutcome(ResultRecord):
     """What happened with one site in the study."""
 
     site: str
@@ -145,7 +131,7 @@ class SiteOutcome(_Record):
     description: str | None = Field(default=None, description="Shift description (rehearsal).")
 
 
-class AdaptationRow(_Record):
+class AdaptationRow(ResultRecord):
     """One point of an adaptation curve: a metric after fine-tuning on n local cases.
 
     Combined over the repeats (seeds) by Rubin's rules on the logit scale; see
@@ -167,7 +153,7 @@ class AdaptationRow(_Record):
     reason: str | None = None
 
 
-class AdequateCases(_Record):
+class AdequateCases(ResultRecord):
     """The smallest number of local cases whose mean AUC comes within the margin."""
 
     site: str
@@ -178,7 +164,7 @@ class AdequateCases(_Record):
     reason: str | None = None
 
 
-class ReferenceLine(_Record):
+class ReferenceLine(ResultRecord):
     """One site's AUC under one of the four reference lines, on its held-out test set."""
 
     site: str
@@ -191,7 +177,7 @@ class ReferenceLine(_Record):
     reason: str | None = None
 
 
-class SimulationCheck(_Record):
+class SimulationCheck(ResultRecord):
     """A value a rehearsal knows because its data are simulated, beside the study's estimate.
 
     No study of real hospitals can fill this in: the coordinator never sees a case. It is
@@ -211,7 +197,7 @@ class SimulationCheck(_Record):
         return self.estimate - self.true_value
 
 
-class StudyResults(_Record):
+class StudyResults(ResultRecord):
     """Everything a study produced."""
 
     study_id: str
