@@ -109,8 +109,11 @@ def _controlled(perf: Performance, m: int, path: str, suppressed: list[str]) -> 
 
 
 def _hull(e: EstimateRecord, successes: Cell, failures: Cell) -> EstimateRecord:
-    """Return a Wilson proportion as the censored cells allow (unchanged if neither is)."""
+    """Return a Wilson proportion as the censored cells allow (unchanged if neither is).
+
+    Only sensitivity and specificity come here: their two cells split one class.
+    """
     if not is_censored(successes, failures):
         return e
-    hull = cells_hull(successes, failures, wilson, e.confidence)
+    hull = cells_hull(successes, failures, wilson, e.confidence, partners=True)
     return EstimateRecord.of_hull(hull, method=e.method, n=e.n, confidence=e.confidence)

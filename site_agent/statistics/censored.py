@@ -195,6 +195,13 @@ def proportion_hull(
     # Monotone in each argument (module docstring): the extremes lie at two corners.
     low = interval(s_lo, s_lo + f_hi, confidence)
     high = interval(s_hi, s_hi + f_lo, confidence)
+    return _hull(low, high, s_lo + f_lo, s_hi + f_hi, confidence)
+
+
+def _hull(
+    low: Estimate, high: Estimate, n_low: int, n_high: int, confidence: float
+) -> ProportionHull | None:
+    """Return the hull of the intervals at the two extreme counts; None if one is undefined."""
     values = (low.estimate, low.lower, high.estimate, high.upper)
     if not all(math.isfinite(v) for v in values):
         return None
@@ -204,8 +211,8 @@ def proportion_hull(
         lower=low.lower,
         upper=high.upper,
         method=low.method,
-        n_low=s_lo + f_lo,
-        n_high=s_hi + f_hi,
+        n_low=n_low,
+        n_high=n_high,
         confidence=confidence,
     )
 
@@ -215,14 +222,19 @@ def cells_hull(
     failures: Cell,
     interval: Callable[[int, int, float], Estimate],
     confidence: float,
+    *,
+    partners: bool,
 ) -> ProportionHull | None:
     """Return :func:`proportion_hull` of ``successes / (successes + failures)`` over the cells.
 
-    Partners in one class (sensitivity's ``tp`` and ``fn``) move together, their sum being
-    the class total: successes range over the cell's range and failures are the rest.
+    ``partners``: the two cells split one class (sensitivity's ``tp`` and ``fn``), so they
+    move together, their sum being the class total: successes range over the cell's range
+    and failures are the rest. Cells of two classes (PPV's ``tp`` and ``fp``) are not
+    partners, even when the two class totals happen to be equal.
     """
     if (
-        isinstance(successes, CensoredCount)
+        partners
+        and isinstance(successes, CensoredCount)
         and isinstance(failures, CensoredCount)
         and successes.class_total == failures.class_total
         and successes.low + failures.high == successes.class_total
@@ -233,17 +245,5 @@ def cells_hull(
             return None
         low = interval(lo, total, confidence)
         high = interval(hi, total, confidence)
-        values = (low.estimate, low.lower, high.estimate, high.upper)
-        if not all(math.isfinite(v) for v in values):
-            return None
-        return ProportionHull(
-            estimate_low=low.estimate,
-            estimate_high=high.estimate,
-            lower=low.lower,
-            upper=high.upper,
-            method=low.method,
-            n_low=total,
-            n_high=total,
-            confidence=confidence,
-        )
+        return _hull(low, high, total, total, confidence)
     return proportion_hull(cell_range(successes), cell_range(failures), interval, confidence)

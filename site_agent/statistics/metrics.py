@@ -262,6 +262,10 @@ def _proportion(
     )
 
 
+_ONE_CLASS = ("sensitivity", "specificity")
+"""Proportions whose two cells split one class (the others, PPV and NPV, span both)."""
+
+
 def _censored_proportion(
     counts: ConfusionCounts, name: ProportionName, confidence: float
 ) -> ProportionMetrics:
@@ -274,7 +278,7 @@ def _censored_proportion(
     n = cell_range(s)[0] + cell_range(f)[0]
 
     def record(interval: Callable[[int, int, float], Estimate], method: str) -> EstimateRecord:
-        hull = cells_hull(s, f, interval, confidence)
+        hull = cells_hull(s, f, interval, confidence, partners=name in _ONE_CLASS)
         return EstimateRecord.of_hull(hull, method=method, n=n, confidence=confidence)
 
     return ProportionMetrics(
@@ -296,7 +300,7 @@ def _accuracy(c: ConfusionCounts, confidence: float) -> EstimateRecord:
     n = class_total(c.tp, c.fn) + class_total(c.tn, c.fp)
     right = CensoredCount(low=tp_lo + tn_lo, high=tp_hi + tn_hi, class_total=n)
     wrong = CensoredCount(low=n - right.high, high=n - right.low, class_total=n)
-    hull = cells_hull(right, wrong, wilson, confidence)
+    hull = cells_hull(right, wrong, wilson, confidence, partners=True)
     return EstimateRecord.of_hull(hull, method="wilson", n=n, confidence=confidence)
 
 
