@@ -102,7 +102,6 @@ from site_agent.statistics.censored import Cell, CensoredCount
 from site_agent.statistics.summaries import (
     CalibrationBins,
     ConfusionCounts,
-    PatientMoments,
     ScoreHistogram,
     SufficientStatistics,
     model_rater,
@@ -460,15 +459,7 @@ def _confusion(
         cells[below] = CensoredCount(
             low=total - upper_bound, high=total - lower_bound, class_total=total
         )
-    empty = PatientMoments()
-    return ConfusionCounts(
-        threshold=c.threshold,
-        **cells,
-        sensitivity=empty,
-        specificity=empty,
-        ppv=empty,
-        npv=empty,
-    )
+    return c.with_censored(cells)
 
 
 def _class_total(c: ConfusionCounts, name: str) -> int:

@@ -96,7 +96,6 @@ from site_agent.statistics.summaries import (
     AgreementTable,
     CalibrationBins,
     ConfusionCounts,
-    PatientMoments,
     ScoreHistogram,
     SufficientStatistics,
 )
@@ -357,15 +356,7 @@ def _confusion(c: ConfusionCounts, m: int, path: str, note: _Note) -> ConfusionC
         return c
     note.suppressed.extend(f"{path}.{k}" for k in small)
     note.withheld.append(f"{path}.patient_moments")
-    empty = PatientMoments()
-    return ConfusionCounts(
-        threshold=c.threshold,
-        **{**cells, **censored_cells(exact, small, m)},
-        sensitivity=empty,
-        specificity=empty,
-        ppv=empty,
-        npv=empty,
-    )
+    return c.with_censored(censored_cells(exact, small, m))
 
 
 def _agreement(t: AgreementTable, m: int, path: str, note: _Note) -> AgreementTable:

@@ -216,6 +216,23 @@ class ConfusionCounts(_Stat):
             successes, total, pm.clusters, float(pm.sum_a2), float(pm.sum_am), float(pm.sum_m2)
         )
 
+    def with_censored(self, cells: dict[str, Cell]) -> ConfusionCounts:
+        """Return the counts with ``cells`` (by name) replaced, patient moments withheld.
+
+        The moments of a proportion leave with a censored cell of it; they are dropped
+        for the whole threshold.
+        """
+        empty = PatientMoments()
+        current: dict[str, Cell] = {"tp": self.tp, "fp": self.fp, "fn": self.fn, "tn": self.tn}
+        return ConfusionCounts(
+            threshold=self.threshold,
+            **{**current, **cells},
+            sensitivity=empty,
+            specificity=empty,
+            ppv=empty,
+            npv=empty,
+        )
+
     def merge(self, other: ConfusionCounts) -> ConfusionCounts:
         """Return the counts of the union of two disjoint sets of cases."""
         _same("thresholds", self.threshold, other.threshold)
