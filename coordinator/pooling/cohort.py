@@ -8,7 +8,7 @@ possible binning error beside it. Subgroups are pooled the same way, level by le
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from functools import reduce
 
 from coordinator.pooling.sites import POOLED, estimate_row
@@ -70,11 +70,12 @@ def cohort_auc(
     ----------
     Hanley JA, McNeil BJ (1982). Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
     """
-    positives = [stats.class_bins("positive") for stats, _ in parts]
-    negatives = [stats.class_bins("negative") for stats, _ in parts]
-    pos = [sum(sum(counts) for _, counts in bins) for bins in positives]
-    neg = [sum(sum(counts) for _, counts in bins) for bins in negatives]
-    spread_pos, spread_neg = _shared_by_site(positives), _shared_by_site(negatives)
+    pair_auc = _pair_aucs([stats for stats, _ in parts])
+    # Counted from the bins the pair AUCs use (noisy counts need not add up to the totals).
+    pos, neg = (
+        [sum(sum(counts) for _, counts in stats.class_bins(name)) for stats, _ in parts]
+        for name in ("positive", "negative")
+    )
     big_p, big_n = sum(pos), sum(neg)
     reason = None if big_p and big_n else "the pooled cases lack a class: AUC undefined"
     value = bound = 0.0
@@ -87,9 +88,7 @@ def cohort_auc(
             if exact is not None:
                 value += weight * exact
                 continue
-            pair = interpolated_auc(
-                positives[i], negatives[j], spread=(spread_pos[i], spread_neg[j])
-            )
+            pair = pair_auc(i, j)
             value += weight * pair.auc
             bound += weight * pair.bound
     nan = float("nan")
@@ -118,13 +117,25 @@ def site_binned_aucs(releases: Sequence[SiteRelease]) -> dict[str, HistogramAuc]
     (:func:`~site_agent.statistics.binned_auc.shared_shape`); the bound is still the site's
     own (the largest distance to any AUC its released bins allow).
     """
-    positives = [r.statistics.class_bins("positive") for r in releases]
-    negatives = [r.statistics.class_bins("negative") for r in releases]
+    pair_auc = _pair_aucs([r.statistics for r in releases])
+    return {r.site: pair_auc(i, i) for i, r in enumerate(releases)}
+
+
+def _pair_aucs(stats: Sequence[SufficientStatistics]) -> Callable[[int, int], HistogramAuc]:
+    """Return the AUC from bins of site ``i``'s positives against site ``j``'s negatives.
+
+    Every site's bins of a class are spread by the shape all sites' bins of that class
+    give together (computed once here).
+    """
+    positives = [s.class_bins("positive") for s in stats]
+    negatives = [s.class_bins("negative") for s in stats]
     spread_pos, spread_neg = _shared_by_site(positives), _shared_by_site(negatives)
-    return {
-        r.site: interpolated_auc(positives[i], negatives[i], spread=(spread_pos[i], spread_neg[i]))
-        for i, r in enumerate(releases)
-    }
+
+    def pair_auc(i: int, j: int) -> HistogramAuc:
+        spread = (spread_pos[i], spread_neg[j])
+        return interpolated_auc(positives[i], negatives[j], spread=spread)
+
+    return pair_auc
 
 
 def _shared_by_site(sites: Sequence[Histograms]) -> list[Histograms]:
