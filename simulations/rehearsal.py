@@ -59,9 +59,11 @@ RESULTS_FILE = "results.json"
 REPORT_FILE = "report.html"
 DEFAULT_SUBGROUPS = ("scanner_vendor",)
 HISTOGRAM_BINS = 160
-"""Fewer bins than the smallest site has cases (86 held-out cases at the development site):
-a site refuses a histogram with more bins than cases. The bins are equal steps of log-odds
-(:func:`~site_agent.contract.score_scales.logit_edges`), so saturated scores stay apart."""
+"""Equal steps of log-odds (:func:`~site_agent.contract.score_scales.logit_edges`), so
+saturated scores stay apart. More bins than the smallest site has cases (86 held-out cases
+at the development site) is allowed: each site merges its bins until every class count is
+0 or at least its minimum cell (``python -m simulations.benchmarks.resolution`` compares
+scales)."""
 DEFAULT_THRESHOLDS = (0.5,)
 REHEARSAL_ADAPTATION = AdaptationPlan(epochs=200, learning_rate=0.02, l2_to_initial=0.1)
 """The fine-tuning plan a rehearsal registers, fixed in advance like any protocol's.

@@ -23,6 +23,7 @@ from simulations.rehearsal import HISTOGRAM_BINS, rehearse
 from simulations.scenario import default_scenario
 from site_agent.contract.protocol import uniform_edges
 from site_agent.contract.score_scales import logit_edges
+from site_agent.disclosure.policy import DEFAULT_MIN_CELL
 from site_agent.notices import RESEARCH_NOTICE
 
 SITE_TOLERANCE = 0.01
@@ -84,15 +85,20 @@ def run_scale(name: str, edges: tuple[float, ...] | None, work: Path) -> None:
         )
 
 
-def range_half_width(edges: tuple[float, ...], work: Path) -> float:
-    """Half-width of the range of one-cohort AUCs the released bins allow.
+def range_half_widths(edges: tuple[float, ...], work: Path) -> None:
+    """Print the half-width of the one-cohort AUC range: released bins, and coordinated bins.
 
-    Runs the default scenario's evaluation round again and takes, over every pair of
-    cases from two different sites, the share of pairs whose bins overlap, halved (the
-    within-site pairs are exact): the bound a midpoint estimate would carry.
+    Runs the default scenario's evaluation round again and takes, over every pair of cases
+    from two different sites, the share of pairs whose bins overlap, halved (the
+    within-site pairs are exact): the bound a midpoint estimate would carry. Beside it,
+    the half-width if every site had placed its cuts knowing every other site's scores
+    (:mod:`simulations.benchmarks.coordinated_bins`; simulation only), at the default
+    minimum cell and at 3.
     """
     from coordinator.runs.engines import run_study
+    from simulations.benchmarks.coordinated_bins import coordinated_half_width
     from simulations.rehearsal import prepare_study
+    from simulations.simulation_truth import site_scores
     from site_agent.statistics.roc import mixed_histogram_auc
 
     study = prepare_study(default_scenario(), work / "parts", histogram_edges=edges)
@@ -110,7 +116,14 @@ def range_half_width(edges: tuple[float, ...], work: Path) -> float:
             if i != j and stats[i].n_positive and stats[j].n_negative:
                 pair = mixed_histogram_auc(pos, neg)
                 total += pair.bound * pair.n_positive * pair.n_negative
-    return total / (big_p * big_n)
+    half = total / (big_p * big_n)
+    print(f"half-width of the one-cohort AUC range the released bins allow {half:.4f}")
+    scores = site_scores(study.bundle_path, study.protocol, study.settings)
+    for min_cell in (DEFAULT_MIN_CELL, 3):
+        print(
+            f"the same, bins placed knowing every site's scores (simulation only), "
+            f"minimum cell {min_cell}: {coordinated_half_width(scores, edges, min_cell):.4f}"
+        )
 
 
 def main() -> None:
@@ -131,8 +144,8 @@ def main() -> None:
             run_scale(name, SCALES[name], Path(tmp))
         first = SCALES[names[0]]
         if first is not None:
-            half = range_half_width(first, Path(tmp) / "parts")
-            print(f"\n{names[0]}: half-width of the one-cohort AUC range the bins allow {half:.4f}")
+            print(f"\n{names[0]}:")
+            range_half_widths(first, Path(tmp) / "parts")
     print(f"\n{RESEARCH_NOTICE}")
 
 
