@@ -8,11 +8,14 @@ attributes, acquisition dates and a few cases whose reference standard is still 
 
 Invented data, for demonstration only: not clinical data and not for clinical use.
 
-Run ``python examples/make_example_predictions.py`` to write the file next to this script.
+Run ``python examples/make_example_predictions.py`` to write the file next to this script;
+``--seed N --out PATH`` writes another invented hospital's table (a trial with several
+sites on one machine).
 """
 
 from __future__ import annotations
 
+import argparse
 from pathlib import Path
 
 import numpy as np
@@ -76,9 +79,17 @@ def make_predictions(seed: int = SEED) -> pd.DataFrame:
 
 
 def main() -> None:
-    """Write the example file."""
-    make_predictions().to_csv(OUTPUT, index=False, lineterminator="\n")
-    print(f"wrote {OUTPUT.name}")
+    """Write the example file (or, with ``--seed`` and ``--out``, another one)."""
+    parser = argparse.ArgumentParser(
+        description="Write an invented predictions table (demonstration only; sitepool is a "
+        "research tool, not a medical device, not for clinical decisions)."
+    )
+    parser.add_argument("--seed", type=int, default=SEED, help="generator seed")
+    parser.add_argument("--out", type=Path, default=OUTPUT, help="CSV file to write")
+    args = parser.parse_args()
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    make_predictions(args.seed).to_csv(args.out, index=False, lineterminator="\n")
+    print(f"wrote {args.out}")
 
 
 if __name__ == "__main__":

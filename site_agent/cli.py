@@ -190,13 +190,18 @@ def _p_value(p: float | None) -> str:
 
 def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> None:
     """Print the release as readable tables (the same numbers as ``--json``)."""
+    from site_agent.statistics.metrics import AGREEMENT_WITHHELD_REASON
+
     level = int(summary.confidence * 100)
     console.print(f"[bold]Site evaluation: {release.site}[/bold]")
     console.print(f"protocol: {release.protocol_hash}")
+    pending: object = summary.n_pending
+    if release.statistics.pending_withheld:
+        pending = "withheld (at least 1, not in the case count)"
     console.print(
         f"cases {summary.n_observations} · patients {summary.n_patients} · "
         f"disease {summary.n_positive} · no disease {summary.n_negative} · "
-        f"reference pending {summary.n_pending} · prevalence {_ci(summary.prevalence)}"
+        f"reference pending {pending} · prevalence {_ci(summary.prevalence)}"
     )
 
     table = Table(title=f"Operating points ({level}% intervals: Wilson; clustered by patient)")
@@ -242,11 +247,14 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
     cal.add_column("value")
     cal.add_row("intercept", _ci(exact.calibration.intercept))
     cal.add_row("slope", _ci(exact.calibration.slope))
-    cal.add_row("Brier score", _number(summary.brier.value))
-    cal.add_row("expected calibration error", _number(summary.ece.value))
+    for label, m in (("Brier score", summary.brier), ("expected calibration error", summary.ece)):
+        text = _number(m.value)
+        if m.low is not None and m.high is not None:
+            text = f"{m.low:.3f} to {m.high:.3f} ({m.reason})"
+        cal.add_row(label, text)
     console.print(cal)
 
-    if summary.agreement:
+    if summary.agreement or summary.withheld_agreement:
         kappa = Table(title=f"Agreement, Cohen's kappa ({level}% intervals)")
         for column in ("raters", "cases", "unweighted", "linear", "quadratic"):
             kappa.add_column(column)
@@ -259,6 +267,8 @@ def _render(release: SiteRelease, summary: MetricsSummary, console: Console) -> 
                 _ci(k.linear) if weighted else "",
                 _ci(k.quadratic) if weighted else "",
             )
+        for raters in summary.withheld_agreement:
+            kappa.add_row(" vs ".join(raters), "—", f"— ({AGREEMENT_WITHHELD_REASON})", "", "")
         console.print(kappa)
 
     if release.subgroups:

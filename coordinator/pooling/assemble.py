@@ -35,6 +35,7 @@ from coordinator.pooling.meta_rows import meta_rows, site_subgroup_meta
 from coordinator.pooling.sites import (
     POOLED,
     SiteInfo,
+    binned_auc_row,
     participant_flow,
     site_curves,
     site_rows,
@@ -143,7 +144,9 @@ def _with_shared_shape(rows: list[MetricRow], binned: dict[str, HistogramAuc]) -
         auc = binned.get(row.site)
         if row.metric == "auc" and row.method == "histogram" and row.subgroup is None and auc:
             if auc.reason is None:
-                row = row.model_copy(update={"estimate": auc.auc, "bound": auc.bound})
+                spread = {"estimate": auc.auc, "bound": auc.bound, "reason": None}
+                row = row.model_copy(update={**spread, "estimate_low": None, "estimate_high": None})
+                row = binned_auc_row(row)
         out.append(row)
     return out
 

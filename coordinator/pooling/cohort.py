@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from functools import reduce
 
-from coordinator.pooling.sites import POOLED, estimate_row
+from coordinator.pooling.sites import POOLED, binned_auc_row, estimate_row
 from coordinator.pooling.study_results import CurvePoints, MetricRow
 from site_agent.contract.release import SiteRelease, SubgroupRelease
 from site_agent.exceptions import InputError
@@ -64,7 +64,8 @@ def cohort_auc(
     allow. A site
     whose exact AUC is withheld (differential privacy) uses its histogram for its own
     pairs too. The interval is normal with the Hanley & McNeil (1982) standard error,
-    which needs only the AUC and the class sizes.
+    which needs only the AUC and the class sizes. When the bins allow AUCs on both sides
+    of 0.5, the row gives only that range (:func:`~coordinator.pooling.sites.binned_auc_row`).
 
     References
     ----------
@@ -96,7 +97,7 @@ def cohort_auc(
         value = bound = nan
     se = hanley_mcneil_se(value, big_p, big_n)
     z = two_sided_z(confidence)
-    return MetricRow(
+    row = MetricRow(
         site=POOLED,
         metric="auc",
         method="hanley-mcneil",
@@ -107,6 +108,7 @@ def cohort_auc(
         reason=reason,
         bound=None if reason else bound,
     )
+    return binned_auc_row(row)
 
 
 def site_binned_aucs(releases: Sequence[SiteRelease]) -> dict[str, HistogramAuc]:

@@ -9,16 +9,52 @@ statistics (:func:`summary_rows`) are the same for one site and for the merged p
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
-from coordinator.pooling.study_results import CurvePoints, MetricRow, ParticipantFlow, TwoByTwo
+from coordinator.pooling.study_results import (
+    COARSE_BINS_REASON,
+    CurvePoints,
+    MetricRow,
+    ParticipantFlow,
+    TwoByTwo,
+)
 from site_agent.contract.release import AucRecord, EstimateRecord, SiteRelease
-from site_agent.statistics.metrics import MetricsSummary, ProportionMetrics, summarize
+from site_agent.statistics.metrics import (
+    AGREEMENT_WITHHELD_REASON,
+    MetricsSummary,
+    ProportionMetrics,
+    summarize,
+)
 from site_agent.statistics.summaries import SufficientStatistics
 
 POOLED = "pooled"
 """Site name of the merged statistics in the results."""
+CHANCE_AUC = 0.5
+KAPPA_METHODS = ("cohen-kappa", "cohen-kappa-linear", "cohen-kappa-quadratic")
+"""Methods of a table's three kappa rows (unweighted, linear and quadratic weights)."""
+
+
+def binned_auc_row(row: MetricRow) -> MetricRow:
+    """Return an AUC from score bins, or only the range its bins allow when that holds 0.5.
+
+    The released bins allow any AUC within ``estimate ± bound`` (in [0, 1]). When that
+    range holds 0.5 the bins cannot tell the model from chance, and the estimate would
+    rest only on how cases are assumed to spread within bins: the row then carries the
+    range (``estimate_low``, ``estimate_high``) and :data:`COARSE_BINS_REASON`, with no
+    estimate and no interval (a guess is not shown as a number).
+    """
+    if row.bound is None or not math.isfinite(row.estimate):
+        return row
+    low, high = max(0.0, row.estimate - row.bound), min(1.0, row.estimate + row.bound)
+    if not low <= CHANCE_AUC <= high:
+        return row
+    nan = float("nan")
+    update = {"estimate": nan, "lower": nan, "upper": nan, "bound": None}
+    return row.model_copy(
+        update={**update, "estimate_low": low, "estimate_high": high, "reason": COARSE_BINS_REASON}
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,25 +125,33 @@ def summary_rows(site: str, summary: MetricsSummary) -> list[MetricRow]:
         rows.append(estimate_row(site, "accuracy", t.accuracy, threshold=t.threshold))
         f1 = _scalar(site, "f1", t.f1.value, t.f1.n, t.f1.reason, threshold=t.threshold)
         rows.append(f1.model_copy(update={"estimate_low": t.f1.low, "estimate_high": t.f1.high}))
-    rows.append(
-        MetricRow(
-            site=site,
-            metric="auc",
-            method="histogram",
-            estimate=nan_if_none(summary.auc.auc),
-            lower=float("nan"),
-            upper=float("nan"),
-            n=summary.auc.n_positive + summary.auc.n_negative,
-            reason=summary.auc.reason,
-            bound=summary.auc.bound,
-        )
+    binned = MetricRow(
+        site=site,
+        metric="auc",
+        method="histogram",
+        estimate=nan_if_none(summary.auc.auc),
+        lower=float("nan"),
+        upper=float("nan"),
+        n=summary.auc.n_positive + summary.auc.n_negative,
+        reason=summary.auc.reason,
+        bound=summary.auc.bound,
     )
-    rows.append(_scalar(site, "brier", summary.brier.value, summary.brier.n, summary.brier.reason))
-    rows.append(_scalar(site, "ece", summary.ece.value, summary.ece.n, summary.ece.reason))
+    rows.append(binned_auc_row(binned))
+    for name in ("brier", "ece"):
+        m = getattr(summary, name)
+        row = _scalar(site, name, m.value, m.n, m.reason)
+        rows.append(row.model_copy(update={"estimate_low": m.low, "estimate_high": m.high}))
     for k in summary.agreement:
         metric = f"kappa {k.raters[0]} vs {k.raters[1]}"
         for record in (k.unweighted, k.linear, k.quadratic):
             rows.append(estimate_row(site, metric, record))
+    for first, second in summary.withheld_agreement:
+        for method in KAPPA_METHODS:
+            rows.append(
+                _scalar(
+                    site, f"kappa {first} vs {second}", None, 0, AGREEMENT_WITHHELD_REASON
+                ).model_copy(update={"method": method})
+            )
     return rows
 
 
@@ -219,7 +263,7 @@ def participant_flow(site: str, s: SufficientStatistics, info: SiteInfo) -> Part
         observations=s.n_observations,
         patients=s.n_patients,
         with_reference_standard=s.n_positive + s.n_negative,
-        pending_reference_standard=s.n_pending,
+        pending_reference_standard=None if s.pending_withheld else s.n_pending,
         positives=s.n_positive,
         negatives=s.n_negative,
         resampled=info.resampled,

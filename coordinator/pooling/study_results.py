@@ -17,6 +17,9 @@ from coordinator.pooling.records import Number, ResultRecord
 from site_agent.notices import RESEARCH_NOTICE
 from site_agent.statistics.censored import CensoredCount
 
+COARSE_BINS_REASON = "score bins too coarse: they allow AUCs on both sides of chance (0.5)"
+"""Reason of an AUC from score bins shown as the range the bins allow, with no estimate."""
+
 
 class MetricRow(ResultRecord):
     """One estimate with its interval, for one site (or the pool) and one metric."""
@@ -36,11 +39,12 @@ class MetricRow(ResultRecord):
     )
     estimate_low: float | None = Field(
         default=None,
-        description="Resting on a censored cell: smallest value the estimate can take "
-        "(the estimate is then undefined and lower/upper are the hull of the intervals).",
+        description="A range instead of an estimate: the smallest value it can take "
+        "(the estimate is then undefined; reason says why: a censored cell, with lower/upper "
+        "the hull of the intervals, or score bins too coarse, COARSE_BINS_REASON).",
     )
     estimate_high: float | None = Field(
-        default=None, description="Resting on a censored cell: largest value it can take."
+        default=None, description="A range instead of an estimate: the largest value."
     )
 
 
@@ -75,10 +79,14 @@ class ParticipantFlow(ResultRecord):
     """Flow of observations at one site (STARD 2015 item 19)."""
 
     site: str
-    observations: int
+    observations: int = Field(
+        description="Released observations: without the pending ones when those are withheld."
+    )
     patients: int
     with_reference_standard: int
-    pending_reference_standard: int
+    pending_reference_standard: int | None = Field(
+        description="None: withheld by the site's policy (at least one; unknown how many)."
+    )
     positives: int
     negatives: int
     resampled: int = Field(default=0, description="Simulation only: resampled cases.")

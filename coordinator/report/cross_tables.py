@@ -10,8 +10,16 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
+from coordinator.pooling.sites import KAPPA_METHODS
 from coordinator.pooling.study_results import MetricRow, StudyResults
-from coordinator.report.html_parts import esc, estimate_cell, html_table, site_label, slug
+from coordinator.report.html_parts import (
+    DASH,
+    esc,
+    estimate_cell,
+    html_table,
+    site_label,
+    slug,
+)
 from site_agent.statistics.censored import Cell, cell_text, class_total, is_censored, sum_text
 
 
@@ -65,11 +73,15 @@ def readers_table(results: StudyResults, sites: Sequence[str], rows: list[Metric
             if r.site == site and r.metric.startswith("kappa "):
                 kappas.setdefault(r.metric.removeprefix("kappa "), {})[r.method] = r
         for pair, by_method in kappas.items():
-            kinds = ("cohen-kappa", "cohen-kappa-linear", "cohen-kappa-quadratic")
-            cells = [by_method.get(m) for m in kinds]
-            body.append(
-                [site_label(results, site), esc(pair), *(estimate_cell(c) for c in cells), ""]
-            )
+            cells = [by_method.get(m) for m in KAPPA_METHODS]
+            shown = [estimate_cell(c) for c in cells]
+            if (
+                cells[0] is not None
+                and cells[0].reason
+                and all(c is not None and c.reason == cells[0].reason for c in cells)
+            ):
+                shown[1:] = [DASH, DASH]  # one reason for the table, said once
+            body.append([site_label(results, site), esc(pair), *shown, ""])
         for r in rows:
             if r.site == site and r.metric.startswith("auc difference"):
                 who = r.metric.removeprefix("auc difference ")

@@ -13,7 +13,7 @@ import math
 import re
 from collections.abc import Container, Iterable, Sequence
 
-from coordinator.pooling.study_results import MetricRow, StudyResults
+from coordinator.pooling.study_results import COARSE_BINS_REASON, MetricRow, StudyResults
 from coordinator.report import plots
 
 POOLED = plots.POOLED_SITE
@@ -111,24 +111,33 @@ def estimate_cell(row: MetricRow | None) -> str:
 
 
 def censored_text(row: MetricRow) -> str:
-    """Return a metric resting on a censored cell: the range of values it can take.
+    """Return a metric shown as the range of values it can take, with the reason.
 
-    The interval shown is the hull of the intervals over that range, so it contains every
-    interval the suppressed counts could have given.
+    A metric resting on a censored cell: the interval shown is the hull of the intervals
+    over that range, so it contains every interval the suppressed counts could have
+    given. An AUC from score bins too coarse to tell it from chance: the range the bins
+    allow, with no interval.
     """
     low, high = row.estimate_low, row.estimate_high
     assert low is not None and high is not None  # the caller checked
+    coarse = row.reason == COARSE_BINS_REASON
     if low <= 0.0 and high >= 1.0:  # a bound that bounds nothing is not shown as a number
-        return (
-            f'{DASH} <span class="reason">not released: site policy (the cells at this '
-            "threshold are below the site's minimum cell size)</span>"
+        why = (
+            "the released score bins allow any AUC"
+            if coarse
+            else "not released: site policy (the cells at this threshold are below the "
+            "site's minimum cell size)"
         )
+        return f'{DASH} <span class="reason">{why}</span>'
     ci = interval_text(row.metric, row.lower, row.upper)
     ci_html = f' <span class="ci">({ci})</span>' if ci else ""
-    return (
-        f"{num(row.metric, low)} to {num(row.metric, high)}{ci_html} "
-        '<span class="reason">range: a cell below the site\'s minimum cell size</span>'
+    why = (
+        "range the score bins allow (too coarse to tell from chance)"
+        if coarse
+        else "range: a cell below the site's minimum cell size"
     )
+    values = f"{num(row.metric, low)} to {num(row.metric, high)}"
+    return f'{values}{ci_html} <span class="reason">{why}</span>'
 
 
 def pvalue_text(p: float) -> str:

@@ -88,7 +88,7 @@ def summary_section(results: StudyResults) -> str:
                 )
             )
     cohort = headline_auc(results, POOLED)
-    if cohort is not None and math.isfinite(cohort.estimate):
+    if cohort is not None and (math.isfinite(cohort.estimate) or cohort.estimate_low is not None):
         items.append(("AUC, all cases as one cohort", _cohort_cell(results, cohort)))
     missing = [s.site for s in results.sites if s.status != "released"]
     if missing:
@@ -106,8 +106,6 @@ def _cohort_cell(results: StudyResults, cohort: MetricRow) -> str:
         text += f' <span class="ci">±{cohort.bound:.3f} largest possible binning error</span>'
     for check in results.simulation_checks:
         if check.site == cohort.site and check.metric == cohort.metric:
-            text += (
-                f"; true value {num('auc', check.true_value)}, error "
-                f"{check.error:+.4f} <em>(simulation only)</em>"
-            )
+            error = f", error {check.error:+.4f}" if math.isfinite(check.error) else ""
+            text += f"; true value {num('auc', check.true_value)}{error} <em>(simulation only)</em>"
     return text

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 
-from coordinator.pooling.study_results import MetaRow, MetricRow, StudyResults
+from coordinator.pooling.study_results import COARSE_BINS_REASON, MetaRow, MetricRow, StudyResults
 from coordinator.report import plots
 from coordinator.report.exports import find_metric
 from coordinator.report.html_parts import (
@@ -88,9 +88,7 @@ def forest_section(results: StudyResults) -> str:
             meta,
             None
             if cohort_row is None
-            else plots.ForestSite(
-                "All cases as one cohort", cohort_row.estimate, cohort_row.lower, cohort_row.upper
-            ),
+            else plots.ForestSite("All cases as one cohort", *_cohort_bar(cohort_row)),
             percent=metric in PERCENT_METRICS,
             log=meta.scale == "log",
         )
@@ -141,12 +139,24 @@ def _censored_caption(sites: list[MetricRow], cohort: MetricRow | None) -> str:
             " No square (a cell below the site's minimum cell size; the range is in the "
             f"accuracy table, and the meta-analysis left the site out): {', '.join(left_out)}."
         )
-    if cohort is not None and cohort.estimate_low is not None:
+    if cohort is not None and cohort.reason == COARSE_BINS_REASON:
+        text += (
+            " The one-cohort bar has no point: it spans the AUCs the released score bins "
+            "allow, which include 0.5 (too coarse for an estimate)."
+        )
+    elif cohort is not None and cohort.estimate_low is not None:
         text += (
             " The one-cohort bar rests on such a cell: it has no point and spans the "
             "intervals over every count the released cells allow."
         )
     return esc(text)
+
+
+def _cohort_bar(row: MetricRow) -> tuple[float, float, float]:
+    """Return the one-cohort marker and bar: for bins too coarse, the range they allow."""
+    if row.reason == COARSE_BINS_REASON and row.estimate_low is not None:
+        return row.estimate, row.estimate_low, row.estimate_high or row.estimate_low
+    return row.estimate, row.lower, row.upper
 
 
 def _forest_label(results: StudyResults, site: str) -> str:

@@ -48,6 +48,9 @@ def sites_section(results: StudyResults) -> str:
     )
 
 
+WITHHELD_PENDING = "withheld: site policy (protects a small count)"
+
+
 def flow_section(results: StudyResults) -> str:
     """Return the participant-flow table (STARD 2015 item 19)."""
     if not results.flow:
@@ -65,16 +68,15 @@ def flow_section(results: StudyResults) -> str:
     ] + (["Resampled cases"] if resampled else [])
     rows = []
     for f in results.flow:
-        row = [site_label(results, f.site)] + [
-            str(v)
-            for v in (
-                f.observations,
-                f.patients,
-                f.with_reference_standard,
-                f.pending_reference_standard,
-                f.positives,
-                f.negatives,
-            )
+        withheld = f.pending_reference_standard is None
+        row = [
+            site_label(results, f.site),
+            f"≥ {f.observations + 1}" if withheld else str(f.observations),
+            *(str(v) for v in (f.patients, f.with_reference_standard)),
+            f'≥ 1 <span class="reason">{WITHHELD_PENDING}</span>'
+            if withheld
+            else str(f.pending_reference_standard),
+            *(str(v) for v in (f.positives, f.negatives)),
         ]
         row.append(num("prevalence", prevalence(f)))
         if resampled:

@@ -595,6 +595,4 @@ def control_agreement(
     if not dropped:
         return stats
     out.withheld.extend(f"{path}.agreement[{i}]" for i in sorted(dropped))
-    return stats.model_copy(
-        update={"agreement": tuple(t for i, t in enumerate(stats.agreement) if i not in dropped)}
-    )
+    return stats.withholding(dropped)

@@ -288,7 +288,7 @@ def _with_noise(s: SufficientStatistics, ints: Any, floats: Any) -> SufficientSt
         n_observations=totals[0],
         n_positive=totals[1],
         n_negative=totals[2],
-        n_pending=totals[3],
+        n_pending=0 if s.pending_withheld else totals[3],
         n_patients=totals[4],
         confusion=tuple(confusion),
         histogram=histogram.model_copy(
@@ -303,6 +303,8 @@ def _with_noise(s: SufficientStatistics, ints: Any, floats: Any) -> SufficientSt
         ),
         calibration=calibration,
         agreement=tuple(agreement),
+        withheld_agreement=s.withheld_agreement,
+        pending_withheld=s.pending_withheld,
     )
 
 

@@ -307,18 +307,14 @@ def _controlled(
     population withholds its pending cases (their counts add up across the levels).
     """
     histogram = stats.histogram
-    n_observations, n_pending = stats.n_observations, stats.n_pending
-    agreement = stats.agreement
-    if pending_out and n_pending:
+    if pending_out and stats.n_pending:
         note.withheld.append(f"{path}.pending")
-        if agreement:
+        if stats.agreement:
             # Agreement tables count pending cases too: their totals would give the count away.
             note.withheld.append(f"{path}.agreement")
-            agreement = ()
-        n_observations -= n_pending
-        n_pending = 0
+        stats = stats.withholding(pending=True)
         histogram = _labelled_only(histogram)
-    elif n_pending and path != "statistics":
+    elif stats.n_pending and path != "statistics":
         # A subgroup's all row counts its labelled cases only: pending cases are no class
         # of the partition rule, and a level's pending counts at its edges could be set
         # against the site's (and the other levels') to recover a small pending count
@@ -326,24 +322,21 @@ def _controlled(
         note.withheld.append(f"{path}.histogram.pending")
         histogram = _labelled_only(histogram)
     # Model-at-threshold tables that two thresholds would difference into a small cell.
-    dropped = differencing_tables(agreement, [c.threshold for c in stats.confusion], m)
+    dropped = differencing_tables(stats.agreement, [c.threshold for c in stats.confusion], m)
     note.withheld.extend(f"{path}.agreement[{i}]" for i in sorted(dropped))
+    kept = [(i, t) for i, t in enumerate(stats.agreement) if i not in dropped]
+    stats = stats.withholding(dropped)
     return SufficientStatistics(
-        n_observations=n_observations,
-        n_positive=stats.n_positive,
-        n_negative=stats.n_negative,
-        n_pending=n_pending,
-        n_patients=stats.n_patients,
-        confusion=tuple(
-            _confusion(c, m, f"{path}.confusion[{i}]", note) for i, c in enumerate(stats.confusion)
-        ),
-        histogram=_histogram(histogram, m, action, f"{path}.histogram", note),
-        calibration=_calibration(stats.calibration, m, action, f"{path}.calibration", note),
-        agreement=tuple(
-            _agreement(t, m, f"{path}.agreement[{i}]", note)
-            for i, t in enumerate(agreement)
-            if i not in dropped
-        ),
+        **{
+            **dict(stats),
+            "confusion": tuple(
+                _confusion(c, m, f"{path}.confusion[{i}]", note)
+                for i, c in enumerate(stats.confusion)
+            ),
+            "histogram": _histogram(histogram, m, action, f"{path}.histogram", note),
+            "calibration": _calibration(stats.calibration, m, action, f"{path}.calibration", note),
+            "agreement": tuple(_agreement(t, m, f"{path}.agreement[{i}]", note) for i, t in kept),
+        }
     )
 
 

@@ -52,6 +52,11 @@ AGREEMENT_CENSORED_REASON = (
     "not released: site policy (an agreement cell is below the minimum cell size)"
 )
 """Reason beside a kappa whose agreement table has suppressed cells."""
+CALIBRATION_CENSORED_REASON = "range: calibration bins below the site's minimum cell size"
+"""Reason beside a Brier score or ECE resting on suppressed calibration bins."""
+AGREEMENT_WITHHELD_REASON = "not released: site policy (the table was withheld whole)"
+"""Reason beside a kappa whose agreement table the site withheld (pending cases, or a
+threshold that would split off a small count)."""
 
 
 class _Summary(BaseModel):
@@ -164,6 +169,9 @@ class MetricsSummary(_Summary):
     ece: ScalarMetric
     calibration: tuple[CalibrationPoint, ...]
     agreement: tuple[KappaMetrics, ...] = Field(default=())
+    withheld_agreement: tuple[tuple[str, str], ...] = Field(
+        default=(), description="Raters of agreement tables withheld whole: no kappa."
+    )
 
 
 def summarize(
@@ -219,10 +227,11 @@ def summarize(
             exact=exact,
             reason=roc.reason,
         ),
-        brier=_brier(s.calibration),
-        ece=_ece(s.calibration),
+        brier=_brier(s),
+        ece=_ece(s),
         calibration=_calibration_points(s.calibration),
         agreement=tuple(_kappas(t, confidence) for t in s.agreement),
+        withheld_agreement=s.withheld_agreement,
     )
 
 
@@ -345,21 +354,83 @@ def _threshold_metrics(c: ConfusionCounts, confidence: float) -> ThresholdMetric
     )
 
 
-def _brier(bins: CalibrationBins) -> ScalarMetric:
+def _brier(s: SufficientStatistics) -> ScalarMetric:
+    """Return the Brier score, or its range when calibration bins are suppressed.
+
+    Brier (1950): BS = (1/N) Σ (score − label)², summed per bin so that it merges. With
+    calibration bins suppressed (released as 0), the cases they held are known in number
+    and class but not in place: the score is the range over their possible bins.
+    """
+    bins = s.calibration
     n = sum(bins.count)
-    if n == 0:
-        return ScalarMetric(value=None, n=0, reason="no labelled cases")
-    # Brier (1950): BS = (1/N) Σ (score − label)², summed per bin so that it merges.
-    return ScalarMetric(value=math.fsum(bins.squared_error_sum) / n, n=n)
+    hidden = _hidden_calibration(s)
+    if hidden is None:
+        if n == 0:
+            return ScalarMetric(value=None, n=0, reason="no labelled cases")
+        return ScalarMetric(value=math.fsum(bins.squared_error_sum) / n, n=n)
+    positives, negatives, low_edges, high_edges = hidden
+    total = n + positives + negatives
+    known = math.fsum(bins.squared_error_sum)
+    # A hidden positive in [a, b) errs by (1 − score)², a hidden negative by score².
+    low = known + positives * min((1 - b) ** 2 for b in high_edges)
+    low += negatives * min(a**2 for a in low_edges)
+    high = known + positives * max((1 - a) ** 2 for a in low_edges)
+    high += negatives * max(b**2 for b in high_edges)
+    return ScalarMetric(
+        value=None, n=total, reason=CALIBRATION_CENSORED_REASON, low=low / total, high=high / total
+    )
 
 
-def _ece(bins: CalibrationBins) -> ScalarMetric:
+def _ece(s: SufficientStatistics) -> ScalarMetric:
+    """Return the expected calibration error; a range when calibration bins are suppressed.
+
+    A suppressed bin adds ``|Σ(score − label)|`` over its cases, between 0 and
+    ``Σ|score − label|`` (at most ``1 − a`` per positive and ``b`` per negative in [a, b));
+    a merged bin that also holds released cases, between 0 and their ``|Σ|`` plus that.
+    """
+    bins = s.calibration
     n = sum(bins.count)
-    if n == 0:
-        return ScalarMetric(value=None, n=0, reason="no labelled cases")
-    value = float(expected_calibration_error(bins.count, bins.score_sum, bins.label_sum))
-    reason = None if math.isfinite(value) else "not defined on these data"
-    return ScalarMetric(value=finite_or_none(value), n=n, reason=reason)
+    hidden = _hidden_calibration(s)
+    if hidden is None:
+        if n == 0:
+            return ScalarMetric(value=None, n=0, reason="no labelled cases")
+        value = float(expected_calibration_error(bins.count, bins.score_sum, bins.label_sum))
+        reason = None if math.isfinite(value) else "not defined on these data"
+        return ScalarMetric(value=finite_or_none(value), n=n, reason=reason)
+    positives, negatives, low_edges, high_edges = hidden
+    total = n + positives + negatives
+    gaps = [abs(a - b) for a, b in zip(bins.score_sum, bins.label_sum, strict=True)]
+    suppressed = set(bins.suppressed)
+    # A bin holding hidden cases and released ones (after a merge) may cancel to 0.
+    known = math.fsum(g for i, g in enumerate(gaps) if i not in suppressed)
+    most = positives * max(1 - a for a in low_edges) + negatives * max(high_edges)
+    return ScalarMetric(
+        value=None,
+        n=total,
+        reason=CALIBRATION_CENSORED_REASON,
+        low=known / total,
+        high=(math.fsum(gaps) + most) / total,
+    )
+
+
+def _hidden_calibration(
+    s: SufficientStatistics,
+) -> tuple[int, int, list[float], list[float]] | None:
+    """Return hidden positives and negatives and the lower and upper edges of their bins.
+
+    Hidden: labelled cases in no released calibration bin (the bins a site suppressed read
+    0; the class totals are released). They lie in the suppressed bins (after a merge,
+    bins that also hold other sites' released cases), or, for statistics that do not list
+    them, in the bins that read 0. None when every labelled case is in a released bin
+    (noisy counts may even add up to more).
+    """
+    bins = s.calibration
+    positives = max(0, s.n_positive - sum(bins.label_sum))
+    negatives = max(0, s.n_negative - (sum(bins.count) - sum(bins.label_sum)))
+    empty = list(bins.suppressed) or [i for i, c in enumerate(bins.count) if c == 0]
+    if not (positives or negatives) or not empty:
+        return None
+    return positives, negatives, [bins.edges[i] for i in empty], [bins.edges[i + 1] for i in empty]
 
 
 def _calibration_points(bins: CalibrationBins) -> tuple[CalibrationPoint, ...]:

@@ -347,6 +347,11 @@ class CalibrationBins(_Stat):
     score_sum: tuple[float, ...]
     label_sum: tuple[NonNegativeInt, ...]
     squared_error_sum: tuple[float, ...]
+    suppressed: tuple[NonNegativeInt, ...] = Field(
+        default=(),
+        description="Bins the site's policy suppressed (their count and sums read 0); after "
+        "a merge, every bin that holds a suppressed bin of either side.",
+    )
 
     @model_validator(mode="after")
     def _lengths_match_edges(self) -> CalibrationBins:
@@ -355,6 +360,10 @@ class CalibrationBins(_Stat):
         fields = (self.count, self.score_sum, self.label_sum, self.squared_error_sum)
         if any(len(f) != bins for f in fields):
             raise ValueError("calibration sums must have one entry per bin")
+        if list(self.suppressed) != sorted(set(self.suppressed)) or any(
+            i >= bins for i in self.suppressed
+        ):
+            raise ValueError("suppressed calibration bins must be unique, sorted bin indices")
         return self
 
     def coarsened(self, edges: tuple[float, ...]) -> CalibrationBins:
@@ -366,6 +375,9 @@ class CalibrationBins(_Stat):
             score_sum=_regroup(self.score_sum, groups),
             label_sum=_regroup(self.label_sum, groups),
             squared_error_sum=_regroup(self.squared_error_sum, groups),
+            suppressed=tuple(
+                k for k, (lo, hi) in enumerate(groups) if any(lo <= i < hi for i in self.suppressed)
+            ),
         )
 
     def without_bins(self, bins: Set[int]) -> CalibrationBins:
@@ -380,6 +392,7 @@ class CalibrationBins(_Stat):
             score_sum=keep(self.score_sum),
             label_sum=keep(self.label_sum),
             squared_error_sum=keep(self.squared_error_sum),
+            suppressed=tuple(sorted({*self.suppressed, *bins})),
         )
 
     def merge(self, other: CalibrationBins) -> CalibrationBins:
@@ -393,6 +406,7 @@ class CalibrationBins(_Stat):
             score_sum=_addf(self.score_sum, other.score_sum),
             label_sum=_add(self.label_sum, other.label_sum),
             squared_error_sum=_addf(self.squared_error_sum, other.squared_error_sum),
+            suppressed=tuple(sorted({*self.suppressed, *other.suppressed})),
         )
 
 
@@ -492,6 +506,16 @@ class SufficientStatistics(_Stat):
     histogram: ScoreHistogram
     calibration: CalibrationBins
     agreement: tuple[AgreementTable, ...] = Field(default=(), max_length=MAX_AGREEMENT_TABLES)
+    withheld_agreement: tuple[tuple[str, str], ...] = Field(
+        default=(),
+        max_length=MAX_AGREEMENT_TABLES,
+        description="Raters of the agreement tables the site's policy withheld whole.",
+    )
+    pending_withheld: bool = Field(
+        default=False,
+        description="The site's policy withheld its pending cases (at least one): "
+        "n_pending reads 0 and n_observations leaves them out.",
+    )
 
     @model_validator(mode="after")
     def _thresholds_and_tables_ordered(self) -> SufficientStatistics:
@@ -503,6 +527,11 @@ class SufficientStatistics(_Stat):
         raters = [t.raters for t in self.agreement]
         if raters != sorted(set(raters)):
             raise ValueError("agreement tables must be unique and sorted by raters")
+        withheld = list(self.withheld_agreement)
+        if withheld != sorted(set(withheld)) or set(withheld) & set(raters):
+            raise ValueError("withheld agreement tables must be unique, sorted and not released")
+        if self.pending_withheld and self.n_pending:
+            raise ValueError("withheld pending cases must read 0")
         return self
 
     @property
@@ -530,7 +559,9 @@ class SufficientStatistics(_Stat):
     def merge(self, other: SufficientStatistics) -> SufficientStatistics:
         """Return the statistics of the union of two disjoint sets of cases.
 
-        Agreement tables are matched by their raters; a table only one side has is kept.
+        Agreement tables are matched by their raters; a table only one side has is kept,
+        and a table either side withheld is withheld from the union (the rest would not be
+        all of its cases).
 
         Raises
         ------
@@ -541,6 +572,7 @@ class SufficientStatistics(_Stat):
         tables = {t.raters: t for t in self.agreement}
         for t in other.agreement:
             tables[t.raters] = tables[t.raters].merge(t) if t.raters in tables else t
+        withheld = {*self.withheld_agreement, *other.withheld_agreement}
         return SufficientStatistics(
             n_observations=self.n_observations + other.n_observations,
             n_positive=self.n_positive + other.n_positive,
@@ -552,8 +584,32 @@ class SufficientStatistics(_Stat):
             ),
             histogram=self.histogram.merge(other.histogram),
             calibration=self.calibration.merge(other.calibration),
-            agreement=tuple(tables[k] for k in sorted(tables)),
+            agreement=tuple(tables[k] for k in sorted(tables) if k not in withheld),
+            withheld_agreement=tuple(sorted(withheld)),
+            pending_withheld=self.pending_withheld or other.pending_withheld,
         )
+
+    def withholding(
+        self, tables: Set[int] = frozenset(), *, pending: bool = False
+    ) -> SufficientStatistics:
+        """Return these statistics with agreement tables ``tables`` (indices) withheld.
+
+        ``pending``: also withhold the pending cases, and with them every agreement table
+        (tables count pending cases too, so their totals would give the count away).
+        """
+        out = set(range(len(self.agreement))) if pending and self.n_pending else set(tables)
+        raters = {*self.withheld_agreement, *(self.agreement[i].raters for i in out)}
+        update: dict[str, Any] = {
+            "agreement": tuple(t for i, t in enumerate(self.agreement) if i not in out),
+            "withheld_agreement": tuple(sorted(raters)),
+        }
+        if pending and self.n_pending:
+            update |= {
+                "n_observations": self.n_observations - self.n_pending,
+                "n_pending": 0,
+                "pending_withheld": True,
+            }
+        return self.model_copy(update=update)
 
 
 def reader_scales(predictions: Predictions) -> dict[str, Scale]:

@@ -10,7 +10,11 @@ minimum cell sizes, at one site and for two sites merged:
   unsuppressed interval (its hull over the censored range is at least as wide);
 - the AUC from released score bins, within its bound, contains the exact AUC of the
   scores (scikit-learn's ``roc_auc_score``), whether the policy merges small bins or
-  suppresses them (suppressed cases count as unknown within their bins, never as 0).
+  suppresses them (suppressed cases count as unknown within their bins, never as 0);
+- the Brier score (scikit-learn's ``brier_score_loss`` without suppression) and the ECE
+  are exact, or a range holding the unsuppressed value when calibration bins are
+  suppressed; with merged bins the ECE is taken on the coarser bins, never above the
+  unsuppressed one.
 
 The corner shortcut of :mod:`site_agent.statistics.censored` is checked against a slow,
 obviously correct enumeration of every allowed count.
@@ -25,7 +29,7 @@ import pandas as pd
 import pytest
 from hypothesis import assume, example, given, settings
 from hypothesis import strategies as st
-from sklearn.metrics import roc_auc_score
+from sklearn.metrics import brier_score_loss, roc_auc_score
 
 from site_agent.contract.protocol import EvaluationPlan, uniform_edges
 from site_agent.contract.release import EstimateRecord
@@ -83,6 +87,8 @@ def _statistics(
         assume(False)  # a small site total: refused as a whole, nothing to check
         raise
     binned = summarize(controlled.statistics).auc
+    brier = summarize(release.statistics).brier.value
+    assert brier == pytest.approx(brier_score_loss(labels, scores))  # scikit-learn reference
     if 0 < labels.sum() < n:
         exact = roc_auc_score(labels, scores)  # scikit-learn reference
         assert binned.auc is not None and binned.bound is not None
@@ -127,6 +133,18 @@ def _threshold_holds(reported: ThresholdMetrics, true: ThresholdMetrics) -> None
 def _summary_holds(reported: MetricsSummary, true: MetricsSummary) -> None:
     for r, t in zip(reported.thresholds, true.thresholds, strict=True):
         _threshold_holds(r, t)
+    for name in ("brier", "ece"):
+        r, t = getattr(reported, name), getattr(true, name)
+        if r.value is None and r.low is not None and r.high is not None:
+            # Suppressed calibration bins: a range holding the unsuppressed value.
+            assert t.value is not None
+            assert r.low - 1e-12 <= t.value <= r.high + 1e-12
+        elif name == "brier" and r.value is not None:
+            assert r.value == pytest.approx(t.value)
+        elif r.value is not None:
+            # Merged calibration bins: ECE on coarser bins, which can only be smaller
+            # (|Σ over merged bins| <= Σ of |Σ over each bin|).
+            assert t.value is not None and r.value <= t.value + 1e-12
 
 
 @settings(max_examples=40, deadline=None)
