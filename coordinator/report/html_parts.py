@@ -98,7 +98,10 @@ def interval_text(metric: str, lower: float, upper: float) -> str:
 
 
 def estimate_cell(row: MetricRow | None) -> str:
-    """Return the inner HTML of a table cell: estimate (95% CI), or a dash and the reason."""
+    """Return the inner HTML of a table cell: estimate (95% CI), or a dash and the reason.
+
+    An AUC from score bins carries its binning bound after the interval (``±b``).
+    """
     if row is None:
         return f'{DASH} <span class="reason">not available</span>'
     if row.estimate_low is not None and row.estimate_high is not None:
@@ -107,6 +110,8 @@ def estimate_cell(row: MetricRow | None) -> str:
         return f'{DASH} <span class="reason">{esc(row.reason or "undefined")}</span>'
     ci = interval_text(row.metric, row.lower, row.upper)
     ci_html = f' <span class="ci">({ci})</span>' if ci else ""
+    if row.bound is not None and math.isfinite(row.bound):  # an AUC from score bins
+        ci_html += f' <span class="ci">±{row.bound:.3f}</span>'
     return f"{num(row.metric, row.estimate)}{ci_html}"
 
 
@@ -157,7 +162,9 @@ def html_table(
 ) -> str:
     """Return a table; ``header`` and cells are HTML already.
 
-    Columns are right-aligned as numbers except those listed in ``text_columns``.
+    Columns are right-aligned as numbers except those listed in ``text_columns``. A table
+    wider than the page scrolls sideways inside its own box (ranges with their reasons
+    make some tables wide) instead of running past the page's edge.
     """
     head = "".join(f"<th>{h}</th>" for h in header)
     body = "".join(
@@ -169,8 +176,8 @@ def html_table(
         for r in rows
     )
     return (
-        f'<table id="{table_id}"><caption>{esc(caption)}</caption>'
-        f"<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+        f'<div class="table-scroll"><table id="{table_id}"><caption>{esc(caption)}</caption>'
+        f"<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table></div>"
     )
 
 

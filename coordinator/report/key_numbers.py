@@ -103,7 +103,7 @@ def _cohort_cell(results: StudyResults, cohort: MetricRow) -> str:
     """Return the one-cohort AUC with its binning bound and, in a rehearsal, its true value."""
     text = estimate_cell(cohort)
     if cohort.bound is not None and math.isfinite(cohort.bound):
-        text += f' <span class="ci">±{cohort.bound:.3f} largest possible binning error</span>'
+        text += ' <span class="ci">(± the largest possible binning error)</span>'
     for check in results.simulation_checks:
         if check.site == cohort.site and check.metric == cohort.metric:
             error = f", error {check.error:+.4f}" if math.isfinite(check.error) else ""

@@ -8,10 +8,9 @@ intercept and slope) and its accuracy at every pre-specified threshold, followin
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable, Sequence
 
-from coordinator.pooling.study_results import MetricRow, StudyResults
+from coordinator.pooling.study_results import StudyResults
 from coordinator.report.cross_tables import readers_table
 from coordinator.report.exports import find_metric, prevalence
 from coordinator.report.html_parts import (
@@ -122,7 +121,7 @@ def estimates_section(results: StudyResults) -> str:
         present = [r for r in found if r is not None]
         if present:
             n = str(max(r.n for r in present))
-            cells = [_headline_cell(r) for r in found]
+            cells = [estimate_cell(r) for r in found]
             rows.append([site_label(results, site), n, *cells])
     out = html_table(
         "table-site-metrics",
@@ -187,13 +186,6 @@ _HEADLINE: tuple[tuple[str, str, str, str], ...] = (
 """Columns of the per-site table: (metric, method, heading, sub-heading)."""
 
 
-def _headline_cell(row: MetricRow | None) -> str:
-    if row is not None and row.bound is not None and math.isfinite(row.estimate):
-        text = estimate_cell(row) if math.isfinite(row.lower) else num(row.metric, row.estimate)
-        return f'{text} <span class="ci">±{row.bound:.3f}</span>'
-    return estimate_cell(row)
-
-
 def not_released_section(results: StudyResults) -> str:
     """Return the table of sites that declined or did not reply."""
     absent = [s for s in results.sites if s.status != "released"]
@@ -231,7 +223,8 @@ def subgroup_section(results: StudyResults) -> str:
     ]
     return html_table(
         "table-subgroups",
-        "Estimates within subgroups: estimate (95% CI)",
+        "Estimates within subgroups: estimate (95% CI); ± the largest possible binning "
+        "error of an AUC pooled from score bins",
         ["Site", "Subgroup", "Metric", "Threshold", "n", "Estimate (95% CI)", "CI method"],
         body,
         text_columns=(0, 1, 2, 6),

@@ -49,6 +49,7 @@ border-radius:6px;font-weight:600;margin:16px 0}
 details summary{cursor:pointer;color:#444;font-size:.92em}
 nav ol{columns:2;font-size:.92em}
 table{border-collapse:collapse;margin:8px 0 16px;font-size:.82em}
+.table-scroll{overflow-x:auto;max-width:100%}
 caption{text-align:left;font-weight:600;padding:4px 0;color:#333}
 th,td{border:1px solid #d8dde3;padding:4px 8px;vertical-align:top}
 th{background:#eef2f6;text-align:left}tbody tr:nth-child(even){background:#f8fafc}

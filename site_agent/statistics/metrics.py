@@ -284,7 +284,9 @@ def _censored_proportion(
     not released.
     """
     s, f = counts.cells(name)
-    n = cell_range(s)[0] + cell_range(f)[0]
+    # Sensitivity and specificity split one class, whose total is released; PPV and NPV
+    # span both classes: their total is known only from below.
+    n = class_total(s, f) if name in _ONE_CLASS else cell_range(s)[0] + cell_range(f)[0]
 
     def record(interval: Callable[[int, int, float], Estimate], method: str) -> EstimateRecord:
         hull = cells_hull(s, f, interval, confidence, partners=name in _ONE_CLASS)
