@@ -507,16 +507,19 @@ def _histogram(
 
         return h.with_edges(on(both), on(kept["positive"]), on(kept["negative"]))
     pending = [a - p - n for a, p, n in zip(h.all, h.positive, h.negative, strict=True)]
-    rows = []
+    rows, hidden = [], []
     for name, row in (("positive", h.positive), ("negative", h.negative)):
         gone = _next_to_removed(h.edges, kept[name])
         out.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(gone))
         rows.append(tuple(0 if i in gone else v for i, v in enumerate(row)))
+        hidden.append(tuple(sorted({*getattr(h, f"{name}_suppressed"), *gone})))
     return ScoreHistogram(
         edges=h.edges,
         positive=rows[0],
         negative=rows[1],
         all=tuple(p + n + q for p, n, q in zip(rows[0], rows[1], pending, strict=True)),
+        positive_suppressed=hidden[0],
+        negative_suppressed=hidden[1],
     )
 
 

@@ -429,16 +429,20 @@ def _histogram(
         groups = _groups(rows, m)
         note.merged.append(path)
         return h.coarsened((*(h.edges[a] for a, _ in groups), h.edges[-1]))
-    kept = []
+    kept, hidden = [], {}
     for name, row in zip(("positive", "negative", "pending"), rows, strict=True):
         small = _with_complements([row], {i for i, v in enumerate(row) if not _ok(v, m)}, m)
         note.suppressed.extend(f"{path}.{name}[{i}]" for i in sorted(small))
         kept.append(tuple(0 if i in small else v for i, v in enumerate(row)))
+        if name in CLASS_ROWS:
+            before = h.suppressed_on_edges(name)
+            hidden[f"{name}_suppressed"] = tuple(sorted({*before, *small}))
     return ScoreHistogram(
         edges=h.edges,
         positive=kept[0],
         negative=kept[1],
         all=tuple(sum(col) for col in zip(*kept, strict=True)),
+        **hidden,
     )
 
 

@@ -100,6 +100,11 @@ def _groups_for(old: tuple[float, ...], new: tuple[float, ...]) -> list[tuple[in
     return [(position[lo], position[hi]) for lo, hi in pairwise(new)]
 
 
+def _regrouped_bins(bins: tuple[int, ...], groups: list[tuple[int, int]]) -> tuple[int, ...]:
+    """Return the new bins (of ``groups``, see :func:`_groups_for`) holding any of ``bins``."""
+    return tuple(k for k, (lo, hi) in enumerate(groups) if any(lo <= i < hi for i in bins))
+
+
 _Number = TypeVar("_Number", int, float)
 
 
@@ -259,6 +264,10 @@ class ScoreHistogram(_Stat):
     the cuts its own counts allow (:mod:`site_agent.disclosure.partition`), so a class row
     may be finer than ``all``, never coarser (every edge of ``all`` is an edge of both
     classes). None means the class row is on ``edges``.
+
+    ``positive_suppressed`` and ``negative_suppressed`` list the bins of a class row that
+    the site's policy suppressed (they read 0; after a re-binning or a merge, every bin
+    that holds a suppressed one): the class's hidden cases lie in them.
     """
 
     edges: tuple[float, ...]
@@ -267,6 +276,8 @@ class ScoreHistogram(_Stat):
     all: tuple[NonNegativeInt, ...]
     positive_edges: tuple[float, ...] | None = None
     negative_edges: tuple[float, ...] | None = None
+    positive_suppressed: tuple[NonNegativeInt, ...] = ()
+    negative_suppressed: tuple[NonNegativeInt, ...] = ()
 
     @model_validator(mode="after")
     def _lengths_match_edges(self) -> ScoreHistogram:
@@ -280,6 +291,9 @@ class ScoreHistogram(_Stat):
                 raise ValueError("histogram counts must have one entry per bin")
             if not set(self.edges) <= set(edges):
                 raise ValueError(f"every edge of the all row must be an edge of {name}")
+            hidden = list(getattr(self, f"{name}_suppressed"))
+            if hidden != sorted(set(hidden)) or any(i >= len(edges) - 1 for i in hidden):
+                raise ValueError(f"suppressed {name} bins must be unique, sorted bin indices")
         return self
 
     def class_edges(self, name: str) -> tuple[float, ...]:
@@ -296,6 +310,11 @@ class ScoreHistogram(_Stat):
         edges, counts = self.class_histogram(name)
         return _regroup(counts, _groups_for(edges, self.edges))
 
+    def suppressed_on_edges(self, name: str) -> tuple[int, ...]:
+        """Return the bins of ``edges`` that hold a suppressed bin of class row ``name``."""
+        groups = _groups_for(self.class_edges(name), self.edges)
+        return _regrouped_bins(getattr(self, f"{name}_suppressed"), groups)
+
     def coarsened(self, edges: tuple[float, ...]) -> ScoreHistogram:
         """Return the histogram with every row on ``edges``, a subset of ``edges`` (exact)."""
         return self.with_edges(edges, edges, edges)
@@ -307,10 +326,14 @@ class ScoreHistogram(_Stat):
         negative_edges: tuple[float, ...],
     ) -> ScoreHistogram:
         """Return the histogram re-binned row by row to subsets of its own edges (exact)."""
-        rows = {}
+        rows: dict[str, tuple[int, ...]] = {}
         for name, new in (("positive", positive_edges), ("negative", negative_edges)):
             old, counts = self.class_histogram(name)
-            rows[name] = _regroup(counts, _groups_for(old, new))
+            groups = _groups_for(old, new)
+            rows[name] = _regroup(counts, groups)
+            rows[f"{name}_suppressed"] = _regrouped_bins(
+                getattr(self, f"{name}_suppressed"), groups
+            )
         return ScoreHistogram(
             edges=edges,
             all=_regroup(self.all, _groups_for(self.edges, edges)),
@@ -335,6 +358,12 @@ class ScoreHistogram(_Stat):
                 "positive": _add(a.positive, b.positive),
                 "negative": _add(a.negative, b.negative),
                 "all": _add(a.all, b.all),
+                **{
+                    f"{n}_suppressed": tuple(
+                        sorted({*getattr(a, f"{n}_suppressed"), *getattr(b, f"{n}_suppressed")})
+                    )
+                    for n in CLASS_ROWS
+                },
             }
         )
 
@@ -375,9 +404,7 @@ class CalibrationBins(_Stat):
             score_sum=_regroup(self.score_sum, groups),
             label_sum=_regroup(self.label_sum, groups),
             squared_error_sum=_regroup(self.squared_error_sum, groups),
-            suppressed=tuple(
-                k for k, (lo, hi) in enumerate(groups) if any(lo <= i < hi for i in self.suppressed)
-            ),
+            suppressed=_regrouped_bins(self.suppressed, groups),
         )
 
     def without_bins(self, bins: Set[int]) -> CalibrationBins:
@@ -544,8 +571,9 @@ class SufficientStatistics(_Stat):
 
         A site whose policy suppresses small bins releases them as 0 (listed in its note);
         the class total is released, so the cases they held are known in number but not
-        in place. They are returned as one bin spanning the bins of the row that read 0,
-        so that every AUC bound and ROC point computed from the bins counts them as
+        in place. They are returned as one bin spanning the suppressed bins of the row
+        (``{name}_suppressed``; for a release that does not list them, the bins that read
+        0), so that every AUC bound and ROC point computed from the bins counts them as
         unknown within that span, never as absent. Only the released row when nothing is
         hidden (or when noisy counts sum above the total).
         """
@@ -553,7 +581,8 @@ class SufficientStatistics(_Stat):
         hidden = (self.n_positive if name == "positive" else self.n_negative) - sum(counts)
         if hidden <= 0:
             return [(edges, counts)]
-        zeros = [i for i, c in enumerate(counts) if c == 0] or [0, len(counts) - 1]
+        listed = list(getattr(self.histogram, f"{name}_suppressed"))
+        zeros = listed or [i for i, c in enumerate(counts) if c == 0] or [0, len(counts) - 1]
         return [(edges, counts), ((edges[zeros[0]], edges[zeros[-1] + 1]), (hidden,))]
 
     def merge(self, other: SufficientStatistics) -> SufficientStatistics:
