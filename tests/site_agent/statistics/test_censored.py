@@ -23,6 +23,7 @@ obviously correct enumeration of every allowed count.
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -33,7 +34,7 @@ from sklearn.metrics import brier_score_loss, roc_auc_score
 
 from site_agent.contract.protocol import EvaluationPlan, uniform_edges
 from site_agent.contract.release import EstimateRecord
-from site_agent.data.predictions import validate_predictions
+from site_agent.data.predictions import load_predictions, validate_predictions
 from site_agent.disclosure.policy import SitePolicy, SmallCellAction
 from site_agent.disclosure.small_cells import apply_policy
 from site_agent.evaluation import evaluate_site
@@ -226,3 +227,39 @@ def test_corner_hull_equals_enumeration_of_every_count(
     assert math.isclose(hull.estimate_high, max(e.estimate for e in every), abs_tol=1e-12)
     assert math.isclose(hull.lower, min(e.lower for e in every), abs_tol=1e-12)
     assert math.isclose(hull.upper, max(e.upper for e in every), abs_tol=1e-12)
+
+
+def test_hidden_cases_lie_in_the_listed_suppressed_bins_only() -> None:
+    """A class's hidden cases span its suppressed bins, not the empty bins beside them.
+
+    The invented Northgate example table on 20 equal bins under the ``suppress`` action:
+    the release lists the suppressed bins as the disclosure note does, the hidden bin of
+    :meth:`SufficientStatistics.class_bins` spans exactly them, and the AUC from bins
+    within its bound holds scikit-learn's ``roc_auc_score`` of the labelled cases.
+    """
+    example = Path(__file__).parents[3] / "examples" / "northgate_predictions.csv"
+    predictions = load_predictions(example)
+    plan = EvaluationPlan(histogram_edges=uniform_edges(20), thresholds=(0.3, 0.5))
+    release = evaluate_site(predictions, plan, site="northgate", protocol_hash="unregistered")
+    controlled, note = apply_policy(release, SitePolicy(min_cell=5))
+    stats = controlled.statistics
+    hidden_somewhere = False
+    for name in ("positive", "negative"):
+        listed = getattr(stats.histogram, f"{name}_suppressed")
+        noted = [
+            int(p.rsplit("[", 1)[1].rstrip("]"))
+            for p in note.suppressed
+            if p.startswith(f"statistics.histogram.{name}[")
+        ]
+        assert list(listed) == sorted(noted)
+        bins = stats.class_bins(name)
+        if len(bins) == 2:
+            hidden_somewhere = True
+            edges = stats.histogram.edges
+            assert bins[1][0] == (edges[listed[0]], edges[listed[-1] + 1])
+    assert hidden_somewhere  # the case under test
+    known = predictions.labelled
+    exact = roc_auc_score(predictions.label[known], predictions.score[known])
+    binned = summarize(stats).auc
+    assert binned.auc is not None and binned.bound is not None
+    assert abs(binned.auc - exact) <= binned.bound
