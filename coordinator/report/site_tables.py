@@ -135,7 +135,10 @@ def estimates_section(results: StudyResults) -> str:
         "error and ± gives the largest possible error from binning. The AUC from score "
         "bins of a single site is shown with the same bound; within a wide bin of one "
         "site, cases are spread as the other sites' narrower bins of the same class show "
-        "(the bound does not rest on that).</p>"
+        "(the bound does not rest on that). The expected calibration error is taken on "
+        "the calibration bins each site released: where a site merged small bins, on "
+        "fewer, wider bins, which can only lower it (sites are then not compared on one "
+        "binning).</p>"
     )
     out += readers_table(results, sites, overall)
     threshold_metrics = _ordered(
@@ -179,7 +182,7 @@ _HEADLINE: tuple[tuple[str, str, str, str], ...] = (
     ("auc", "obuchowski", "AUC", "patient-clustered CI"),
     ("auc", "histogram", "AUC from score bins", "± binning bound"),
     ("brier", "point", "Brier score", "lower is better"),
-    ("ece", "point", "ECE", "calibration error"),
+    ("ece", "point", "ECE", "on the released bins"),
     ("calibration intercept", "logistic-recalibration", "Calibration", "intercept, ideally zero"),
     ("calibration slope", "logistic-recalibration", "Calibration", "slope, ideally one"),
 )
