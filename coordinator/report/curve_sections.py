@@ -76,5 +76,7 @@ def calibration_section(results: StudyResults) -> str:
         "<b>Calibration per site.</b> Each point is one bin of model scores: the mean score "
         "in the bin (x) against the observed share of positive cases (y); larger points hold "
         "more cases. Points on the dotted diagonal are well calibrated; points below it mean "
-        "the model over-estimates risk at that site.",
+        "the model over-estimates risk at that site. A bin without a point released no "
+        "case: none scored there, or the site's policy suppressed the bin (its cases then "
+        "enter the Brier score and ECE only as ranges, in the accuracy table).",
     )
