@@ -138,15 +138,18 @@ def build_results(
 
 
 def _with_shared_shape(rows: list[MetricRow], binned: dict[str, HistogramAuc]) -> list[MetricRow]:
-    """Replace each site's AUC from score bins by the one spread by all sites' bins."""
+    """Replace each site's AUC from score bins by the one spread by all sites' bins.
+
+    Either is then given as a range alone when its bins cannot tell it from chance
+    (:func:`~coordinator.pooling.sites.binned_auc_row`).
+    """
     out = []
     for row in rows:
-        auc = binned.get(row.site)
-        if row.metric == "auc" and row.method == "histogram" and row.subgroup is None and auc:
-            if auc.reason is None:
-                spread = {"estimate": auc.auc, "bound": auc.bound, "reason": None}
-                row = row.model_copy(update={**spread, "estimate_low": None, "estimate_high": None})
-                row = binned_auc_row(row)
+        if row.metric == "auc" and row.method == "histogram" and row.subgroup is None:
+            auc = binned.get(row.site)
+            if auc is not None and auc.reason is None:
+                row = row.model_copy(update={"estimate": auc.auc, "bound": auc.bound})
+            row = binned_auc_row(row)
         out.append(row)
     return out
 

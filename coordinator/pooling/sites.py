@@ -125,18 +125,19 @@ def summary_rows(site: str, summary: MetricsSummary) -> list[MetricRow]:
         rows.append(estimate_row(site, "accuracy", t.accuracy, threshold=t.threshold))
         f1 = _scalar(site, "f1", t.f1.value, t.f1.n, t.f1.reason, threshold=t.threshold)
         rows.append(f1.model_copy(update={"estimate_low": t.f1.low, "estimate_high": t.f1.high}))
-    binned = MetricRow(
-        site=site,
-        metric="auc",
-        method="histogram",
-        estimate=nan_if_none(summary.auc.auc),
-        lower=float("nan"),
-        upper=float("nan"),
-        n=summary.auc.n_positive + summary.auc.n_negative,
-        reason=summary.auc.reason,
-        bound=summary.auc.bound,
+    rows.append(
+        MetricRow(
+            site=site,
+            metric="auc",
+            method="histogram",
+            estimate=nan_if_none(summary.auc.auc),
+            lower=float("nan"),
+            upper=float("nan"),
+            n=summary.auc.n_positive + summary.auc.n_negative,
+            reason=summary.auc.reason,
+            bound=summary.auc.bound,
+        )
     )
-    rows.append(binned_auc_row(binned))
     for name in ("brier", "ece"):
         m = getattr(summary, name)
         row = _scalar(site, name, m.value, m.n, m.reason)

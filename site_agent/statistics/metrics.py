@@ -45,6 +45,7 @@ from site_agent.statistics.summaries import (
     ProportionName,
     Scale,
     SufficientStatistics,
+    hidden_bins,
 )
 
 DEFAULT_CONFIDENCE = 0.95
@@ -429,7 +430,7 @@ def _hidden_calibration(
     bins = s.calibration
     positives = max(0, s.n_positive - sum(bins.label_sum))
     negatives = max(0, s.n_negative - (sum(bins.count) - sum(bins.label_sum)))
-    empty = list(bins.suppressed) or [i for i, c in enumerate(bins.count) if c == 0]
+    empty = hidden_bins(bins.suppressed, bins.count)
     if not (positives or negatives) or not empty:
         return None
     return positives, negatives, [bins.edges[i] for i in empty], [bins.edges[i + 1] for i in empty]

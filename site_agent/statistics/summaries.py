@@ -105,6 +105,20 @@ def _regrouped_bins(bins: tuple[int, ...], groups: list[tuple[int, int]]) -> tup
     return tuple(k for k, (lo, hi) in enumerate(groups) if any(lo <= i < hi for i in bins))
 
 
+def hidden_bins(suppressed: tuple[int, ...], counts: tuple[int, ...]) -> list[int]:
+    """Return the bins a row's hidden cases may lie in: those listed as suppressed.
+
+    For a row that lists none (released before suppressed bins were listed), every bin
+    that reads 0.
+    """
+    return list(suppressed) or [i for i, c in enumerate(counts) if c == 0]
+
+
+def _union(*groups: tuple[int, ...] | Set[int]) -> tuple[int, ...]:
+    """Return the sorted union of bin indices."""
+    return tuple(sorted(set().union(*groups)))
+
+
 _Number = TypeVar("_Number", int, float)
 
 
@@ -359,8 +373,8 @@ class ScoreHistogram(_Stat):
                 "negative": _add(a.negative, b.negative),
                 "all": _add(a.all, b.all),
                 **{
-                    f"{n}_suppressed": tuple(
-                        sorted({*getattr(a, f"{n}_suppressed"), *getattr(b, f"{n}_suppressed")})
+                    f"{n}_suppressed": _union(
+                        getattr(a, f"{n}_suppressed"), getattr(b, f"{n}_suppressed")
                     )
                     for n in CLASS_ROWS
                 },
@@ -419,7 +433,7 @@ class CalibrationBins(_Stat):
             score_sum=keep(self.score_sum),
             label_sum=keep(self.label_sum),
             squared_error_sum=keep(self.squared_error_sum),
-            suppressed=tuple(sorted({*self.suppressed, *bins})),
+            suppressed=_union(self.suppressed, bins),
         )
 
     def merge(self, other: CalibrationBins) -> CalibrationBins:
@@ -433,7 +447,7 @@ class CalibrationBins(_Stat):
             score_sum=_addf(self.score_sum, other.score_sum),
             label_sum=_add(self.label_sum, other.label_sum),
             squared_error_sum=_addf(self.squared_error_sum, other.squared_error_sum),
-            suppressed=tuple(sorted({*self.suppressed, *other.suppressed})),
+            suppressed=_union(self.suppressed, other.suppressed),
         )
 
 
@@ -581,8 +595,8 @@ class SufficientStatistics(_Stat):
         hidden = (self.n_positive if name == "positive" else self.n_negative) - sum(counts)
         if hidden <= 0:
             return [(edges, counts)]
-        listed = list(getattr(self.histogram, f"{name}_suppressed"))
-        zeros = listed or [i for i, c in enumerate(counts) if c == 0] or [0, len(counts) - 1]
+        listed = getattr(self.histogram, f"{name}_suppressed")
+        zeros = hidden_bins(listed, counts) or [0, len(counts) - 1]
         return [(edges, counts), ((edges[zeros[0]], edges[zeros[-1] + 1]), (hidden,))]
 
     def merge(self, other: SufficientStatistics) -> SufficientStatistics:

@@ -78,12 +78,17 @@ def raw_releases(tables: dict[str, pd.DataFrame]) -> dict[str, SiteRelease]:
 
 @pytest.fixture(scope="module")
 def releases(raw_releases: dict[str, SiteRelease]) -> dict[str, SiteRelease]:
+    return _controlled(raw_releases, SmallCellAction.MERGE)
+
+
+def _controlled(
+    raw: dict[str, SiteRelease], action: SmallCellAction = SmallCellAction.SUPPRESS
+) -> dict[str, SiteRelease]:
+    """Return each site's release after its policy (min cell 5, vendor subgroups allowed)."""
     policy = SitePolicy(
-        min_cell=5,
-        small_cells=SmallCellAction.MERGE,
-        allowed_subgroup_attributes=("scanner_vendor",),
+        min_cell=5, small_cells=action, allowed_subgroup_attributes=("scanner_vendor",)
     )
-    return {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
+    return {name: apply_policy(r, policy)[0] for name, r in raw.items()}
 
 
 def _outcome(releases: dict[str, SiteRelease], declines: list[SiteDecline]) -> RoundOutcome:
@@ -111,11 +116,9 @@ def test_pooled_auc_lies_within_its_bound_of_the_union_auc(
     action: SmallCellAction,
 ) -> None:
     """The one-cohort AUC is within its reported binning bound of scikit-learn's on the union."""
-    policy = SitePolicy(
-        min_cell=5, small_cells=action, allowed_subgroup_attributes=("scanner_vendor",)
+    results = build_results(
+        PROTOCOL, _outcome(_controlled(raw_releases, action), []), engine="test"
     )
-    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
-    results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
     pooled = next(m for m in results.metrics if m.site == POOLED and m.metric == "auc")
     union = pd.concat(tables.values())
     exact = roc_auc_score(union["label"].astype(int), union["score"].astype(float))
@@ -176,11 +179,9 @@ def test_site_aucs_from_bins_lie_within_their_bound_of_scikit_learns(
     Reference: scikit-learn ``roc_auc_score`` on the site's scores. Under either policy
     action: merged bins, or suppressed bins counted as unknown within their span.
     """
-    policy = SitePolicy(
-        min_cell=5, small_cells=action, allowed_subgroup_attributes=("scanner_vendor",)
+    results = build_results(
+        PROTOCOL, _outcome(_controlled(raw_releases, action), []), engine="test"
     )
-    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
-    results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
     for name, table in tables.items():
         row = next(
             m
@@ -261,8 +262,7 @@ def test_score_distribution_test_says_how_many_suppressed_cases_it_leaves_out(
     raw_releases: dict[str, SiteRelease],
 ) -> None:
     """Under the suppress action the test runs on released bins and says what it lacks."""
-    policy = SitePolicy(min_cell=5, allowed_subgroup_attributes=("scanner_vendor",))
-    releases = {name: apply_policy(r, policy)[0] for name, r in raw_releases.items()}
+    releases = _controlled(raw_releases)
     results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
     left_out = []
     for test in results.distribution_tests:
