@@ -154,8 +154,9 @@ def _censored_caption(sites: list[MetricRow], cohort: MetricRow | None) -> str:
 
 def _cohort_bar(row: MetricRow) -> tuple[float, float, float]:
     """Return the one-cohort marker and bar: for bins too coarse, the range they allow."""
-    if row.reason == COARSE_BINS_REASON and row.estimate_low is not None:
-        return row.estimate, row.estimate_low, row.estimate_high or row.estimate_low
+    low, high = row.estimate_low, row.estimate_high
+    if row.reason == COARSE_BINS_REASON and low is not None and high is not None:
+        return row.estimate, low, high
     return row.estimate, row.lower, row.upper
 
 
