@@ -22,6 +22,7 @@ from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 
 from coordinator.pooling.cohort import (
+    cohort_calibration,
     cohort_roc,
     merge_statistics,
     pooled_auc,
@@ -112,9 +113,8 @@ def build_results(
         metrics += [r for r in summary_rows(POOLED, summary) if r.metric != "auc"]
         metrics.append(pooled_auc(releases, confidence))
         metrics += pooled_subgroup_rows(releases, confidence)
-        # The pooled ROC curve comes from every site's own bins, not from the merged ones.
-        curves += [c for c in site_curves(POOLED, summary) if c.kind != "roc"]
-        curves += cohort_roc(releases)
+        # The pooled curves come from every site's own bins, not from the merged ones.
+        curves += cohort_calibration(curves) + cohort_roc(releases)
         two_by_two += two_by_two_tables(POOLED, pooled)
         meta = meta_rows(releases, confidence) + site_subgroup_meta(releases, info, confidence)
         tests = _distribution_tests(releases)

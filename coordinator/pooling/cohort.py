@@ -193,3 +193,22 @@ def cohort_roc(releases: Sequence[SiteRelease]) -> list[CurvePoints]:
             site=POOLED, kind="roc", x=list(curve.fpr), y=list(curve.tpr), exact=list(exact)
         )
     ]
+
+
+def cohort_calibration(site_curves: Sequence[CurvePoints]) -> list[CurvePoints]:
+    """Calibration of all sites' cases together: every site's released bins as points.
+
+    Merged statistics keep only the calibration edges every site kept, which can leave
+    two bins; each site's own bins are exact, so the pooled panel shows all of them (one
+    point per site and bin, ordered by mean score) rather than a coarser merge.
+    """
+    points = sorted(
+        (x, y, n)
+        for c in site_curves
+        if c.kind == "calibration" and c.counts is not None
+        for x, y, n in zip(c.x, c.y, c.counts, strict=True)
+    )
+    if not points:
+        return []
+    xs, ys, ns = zip(*points, strict=True)
+    return [CurvePoints(site=POOLED, kind="calibration", x=list(xs), y=list(ys), counts=list(ns))]

@@ -78,5 +78,7 @@ def calibration_section(results: StudyResults) -> str:
         "more cases. Points on the dotted diagonal are well calibrated; points below it mean "
         "the model over-estimates risk at that site. A bin without a point released no "
         "case: none scored there, or the site's policy suppressed the bin (its cases then "
-        "enter the Brier score and ECE only as ranges, in the accuracy table).",
+        "enter the Brier score and ECE only as ranges, in the accuracy table). The pooled "
+        "panel shows every site's released bins together, unjoined (merging the sites' "
+        "bins would keep only the edges all of them kept).",
     )

@@ -268,7 +268,8 @@ def calibration_svg(curves: Sequence[CurvePoints]) -> str:
             if curve.counts is not None and len(curve.counts) == len(curve.x):
                 biggest = max(max(curve.counts), 1)
                 sizes = [12.0 + 80.0 * c / biggest for c in curve.counts]
-            ax.plot(curve.x, curve.y, color=line_colour, linewidth=1)
+            if not pooled:  # the pooled points are several sites' bins: no line joins them
+                ax.plot(curve.x, curve.y, color=line_colour, linewidth=1)
             ax.scatter(curve.x, curve.y, s=sizes, color=line_colour, zorder=3)
             ax.set_title("Pooled" if pooled else curve.site)
             ax.set_xlim(-0.02, 1.02)

@@ -328,3 +328,25 @@ def test_site_attribute_subgroup_pools_only_the_external_sites(
     assert row.estimate == pytest.approx(expected.back_transformed.estimate)
     assert np.isnan(row.prediction_lower)  # k < 3: no prediction interval (Higgins et al. 2009)
     assert not any(m.subgroup == "role=development" for m in results.meta)  # one site only
+
+
+def test_pooled_calibration_shows_every_sites_bins_and_all_their_cases(
+    tables: dict[str, pd.DataFrame], releases: dict[str, SiteRelease]
+) -> None:
+    """The pooled panel holds each site's released bins: together, every case and positive.
+
+    Reference: the union of the sites' tables, counted by pandas (merged bins, nothing
+    suppressed, so every labelled case is in a released bin).
+    """
+    results = build_results(PROTOCOL, _outcome(releases, []), engine="test")
+    calibration = {c.site: c for c in results.curves if c.kind == "calibration"}
+    pooled = calibration.pop(POOLED)
+    site_points = sorted(
+        p for c in calibration.values() for p in zip(c.x, c.y, c.counts or [], strict=True)
+    )
+    assert sorted(zip(pooled.x, pooled.y, pooled.counts or [], strict=True)) == site_points
+    union = pd.concat(tables.values())
+    labels = union["label"].astype(int)
+    counts = pooled.counts or []
+    assert sum(counts) == len(union)
+    assert sum(n * y for n, y in zip(counts, pooled.y, strict=True)) == pytest.approx(labels.sum())
